@@ -1,0 +1,399 @@
+//! Fixed-point arithmetic shared by every integer path in Lapwing.
+//!
+//! All rounding here is **round half away from zero**, the one rule used
+//! everywhere in the crate, so that the host and the device produce the same
+//! integers bit for bit. Requantization follows the integer-arithmetic-only
+//! scheme of Jacob et al. 2018 (arXiv:1712.05877, section 2.2): a real scale
+//! `M` is written as `M0 * 2^-n` with `M0` in `[0.5, 1)` held as a Q31 integer,
+//! and applied with a saturating rounding doubling high multiply followed by a
+//! rounding right shift. (Their reference code rounds ties of the high
+//! multiply upwards; Lapwing rounds ties away from zero, as documented.)
+//!
+//! ```
+//! use lapwing::fixed_point::{mul_q31, round_shr, Requant};
+//! // 0.5 * 0.5 = 0.25 in Q31.
+//! assert_eq!(mul_q31(1 << 30, 1 << 30), 1 << 29);
+//! // -1.5 rounds away from zero to -2.
+//! assert_eq!(round_shr(-3, 1), -2);
+//! // Multiply an accumulator by the real scale 0.0123.
+//! let rq = Requant::from_real(0.0123).unwrap();
+//! assert_eq!(rq.apply(10_000), 123);
+//! ```
+
+/// Saturating rounding doubling high multiply: `round(a * b / 2^31)`.
+///
+/// Read `a` and `b` as Q31 numbers (or one of them as an integer and the other
+/// as a Q31 factor); the result is their product in the same format.
+/// Ties round away from zero. The only case that overflows,
+/// `i32::MIN * i32::MIN` (which is `+1.0`), saturates to `i32::MAX`.
+/// Error bound: at most 0.5 LSB from the exact product.
+#[inline]
+pub const fn mul_q31(a: i32, b: i32) -> i32 {
+    if a == i32::MIN && b == i32::MIN {
+        return i32::MAX;
+    }
+    let ab = (a as i64) * (b as i64);
+    // |ab| <= 2^62, so the magnitude form below cannot overflow i64.
+    let mag = (ab.unsigned_abs() + (1u64 << 30)) >> 31;
+    // mag <= 2^31, and equals 2^31 only for a positive product that was
+    // excluded above or a negative one (-2^31 fits).
+    if ab < 0 {
+        (mag as i64).wrapping_neg() as i32
+    } else {
+        mag as i32
+    }
+}
+
+/// Rounding arithmetic right shift: `round(x / 2^shift)`, ties away from zero.
+///
+/// Defined for every `shift`; for `shift >= 32` the result is 0 except
+/// `i32::MIN >> 32`, which is exactly -0.5 and rounds to -1.
+/// Error bound: at most 0.5 LSB of the result.
+#[inline]
+pub const fn round_shr(x: i32, shift: u32) -> i32 {
+    if shift == 0 {
+        return x;
+    }
+    if shift >= 32 {
+        return if shift == 32 && x == i32::MIN { -1 } else { 0 };
+    }
+    let mask = ((1u32 << shift) - 1) as i32;
+    let rem = x & mask;
+    let threshold = (mask >> 1) + (x < 0) as i32;
+    (x >> shift) + (rem > threshold) as i32
+}
+
+/// Saturating left shift: `x * 2^shift`, clamped to the `i32` range.
+#[inline]
+pub const fn sat_shl(x: i32, shift: u32) -> i32 {
+    if x == 0 {
+        return 0;
+    }
+    if shift >= 31 {
+        return if x > 0 { i32::MAX } else { i32::MIN };
+    }
+    let limit = i32::MAX >> shift;
+    if x > limit {
+        i32::MAX
+    } else if x < -limit - 1 {
+        i32::MIN
+    } else {
+        x << shift
+    }
+}
+
+/// Shift left (`shift > 0`, saturating) or right (`shift < 0`, rounding half
+/// away from zero) by a signed amount.
+#[inline]
+pub const fn shift_signed(x: i32, shift: i32) -> i32 {
+    if shift >= 0 {
+        sat_shl(x, shift as u32)
+    } else {
+        round_shr(x, shift.unsigned_abs())
+    }
+}
+
+/// Saturating narrowing to `i16`.
+#[inline]
+pub const fn sat_i16(x: i32) -> i16 {
+    if x > i16::MAX as i32 {
+        i16::MAX
+    } else if x < i16::MIN as i32 {
+        i16::MIN
+    } else {
+        x as i16
+    }
+}
+
+/// Saturating narrowing to `i8`.
+#[inline]
+pub const fn sat_i8(x: i32) -> i8 {
+    if x > i8::MAX as i32 {
+        i8::MAX
+    } else if x < i8::MIN as i32 {
+        i8::MIN
+    } else {
+        x as i8
+    }
+}
+
+/// Returns true if and only if narrowing `x` to `i16` would saturate.
+#[inline]
+pub const fn saturates_i16(x: i32) -> bool {
+    x > i16::MAX as i32 || x < i16::MIN as i32
+}
+
+/// A real scale factor as a Q31 multiplier and a power-of-two shift.
+///
+/// Represents `mult * 2^-31 * 2^-shift`. A positive `shift` is a rounding
+/// right shift after the multiply; a negative `shift` is a saturating left
+/// shift of the input before the multiply (so no precision is lost on scales
+/// above one). `mult` is in `[2^30, 2^31)` for non-zero scales, 0 for a zero
+/// scale.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub struct Requant {
+    /// Q31 mantissa, in `[2^30, 2^31)`, or 0.
+    pub mult: i32,
+    /// Power-of-two exponent: right shift if positive, left shift if negative.
+    pub shift: i32,
+}
+
+/// Why a real scale cannot be turned into a [`Requant`].
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ScaleError {
+    /// The scale is negative, NaN or infinite.
+    NotFinitePositive,
+    /// The scale is below `2^-62` or at least `2^31`: outside what a Q31
+    /// multiplier with a shift in `[-31, 62]` represents.
+    OutOfRange,
+}
+
+impl core::fmt::Display for ScaleError {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        match self {
+            ScaleError::NotFinitePositive => f.write_str("scale is negative, NaN or infinite"),
+            ScaleError::OutOfRange => f.write_str("scale is outside [2^-62, 2^31)"),
+        }
+    }
+}
+
+impl core::error::Error for ScaleError {}
+
+impl Requant {
+    /// The identity scale (1.0).
+    pub const ONE: Requant = Requant { mult: 1 << 30, shift: -1 };
+
+    /// Turns a real scale into a Q31 multiplier and a shift (host side).
+    ///
+    /// `mult = round(m * 2^31)` with `scale = m * 2^-shift`, `m` in
+    /// `[0.5, 1)`, ties away from zero; relative error at most `2^-31`.
+    /// A zero scale gives the zero multiplier.
+    ///
+    /// # Errors
+    /// [`ScaleError::NotFinitePositive`] for negative, NaN or infinite
+    /// scales; [`ScaleError::OutOfRange`] outside `[2^-62, 2^31)`.
+    pub fn from_real(scale: f64) -> Result<Requant, ScaleError> {
+        if !(scale.is_finite() && scale >= 0.0) {
+            return Err(ScaleError::NotFinitePositive);
+        }
+        if scale == 0.0 {
+            return Ok(Requant { mult: 0, shift: 0 });
+        }
+        let (m, e) = libm::frexp(scale); // scale = m * 2^e, m in [0.5, 1)
+        let mut mult = libm::round(m * 2_147_483_648.0) as i64;
+        let mut e = e;
+        if mult == 1 << 31 {
+            mult >>= 1;
+            e += 1;
+        }
+        let shift = -e;
+        if !(-31..=62).contains(&shift) {
+            return Err(ScaleError::OutOfRange);
+        }
+        Ok(Requant { mult: mult as i32, shift })
+    }
+
+    /// The real scale this pair represents.
+    pub fn to_real(self) -> f64 {
+        self.mult as f64 / 2_147_483_648.0 * libm::exp2(-(self.shift as f64))
+    }
+
+    /// Applies the scale to an accumulator: `round(acc * mult * 2^-31 * 2^-shift)`.
+    ///
+    /// Saturates to the `i32` range. Error bound: within 1 LSB of the exact
+    /// product of `acc` and the represented scale (one rounding in the high
+    /// multiply, one in the right shift; a left shift rounds once).
+    #[inline]
+    pub const fn apply(self, acc: i32) -> i32 {
+        if self.shift < 0 {
+            // Left shift: one rounding of the exact 64-bit product, so no
+            // precision or range is lost before the multiply.
+            let p = acc as i64 * self.mult as i64; // |p| < 2^62
+            let s = self.shift.unsigned_abs();
+            let r = 31_u32.saturating_sub(s);
+            let mag = if r == 0 {
+                p.unsigned_abs()
+            } else {
+                (p.unsigned_abs() + (1u64 << (r - 1))) >> r
+            };
+            let v = if p < 0 { -(mag as i64) } else { mag as i64 };
+            if v > i32::MAX as i64 {
+                i32::MAX
+            } else if v < i32::MIN as i64 {
+                i32::MIN
+            } else {
+                v as i32
+            }
+        } else {
+            round_shr(mul_q31(acc, self.mult), self.shift as u32)
+        }
+    }
+}
+
+/// Converts a real value to the nearest integer of a fixed-point format with
+/// `frac` fractional bits, ties away from zero, saturating to `i32` (host side).
+pub fn to_fixed_i32(x: f64, frac: i32) -> i32 {
+    let v = libm::round(x * libm::exp2(frac as f64));
+    if v.is_nan() {
+        0
+    } else if v >= i32::MAX as f64 {
+        i32::MAX
+    } else if v <= i32::MIN as f64 {
+        i32::MIN
+    } else {
+        v as i32
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    /// Exact model of `round(v / 2^s)` with ties away from zero, in i128.
+    fn exact_round_div_pow2(v: i128, s: u32) -> i128 {
+        if s == 0 {
+            return v;
+        }
+        let d = 1i128 << s;
+        let mag = (v.abs() + d / 2) / d;
+        if v < 0 {
+            -mag
+        } else {
+            mag
+        }
+    }
+
+    #[test]
+    fn mul_q31_edge_cases() {
+        // Jacob et al. 2018: the one overflowing case saturates.
+        assert_eq!(mul_q31(i32::MIN, i32::MIN), i32::MAX);
+        assert_eq!(mul_q31(i32::MIN, i32::MAX), -i32::MAX);
+        assert_eq!(mul_q31(i32::MAX, i32::MAX), i32::MAX - 1);
+        assert_eq!(mul_q31(0, i32::MIN), 0);
+        // Ties: 1 * 2^30 / 2^31 = 0.5 -> 1, and -0.5 -> -1 (away from zero).
+        assert_eq!(mul_q31(1, 1 << 30), 1);
+        assert_eq!(mul_q31(-1, 1 << 30), -1);
+        assert_eq!(mul_q31(3, 1 << 30), 2); // 1.5 -> 2
+        assert_eq!(mul_q31(-3, 1 << 30), -2); // -1.5 -> -2
+    }
+
+    #[test]
+    fn round_shr_edge_cases() {
+        assert_eq!(round_shr(5, 1), 3);
+        assert_eq!(round_shr(-5, 1), -3);
+        assert_eq!(round_shr(4, 1), 2);
+        assert_eq!(round_shr(-1, 1), -1);
+        assert_eq!(round_shr(1, 1), 1);
+        assert_eq!(round_shr(i32::MIN, 31), -1);
+        assert_eq!(round_shr(i32::MAX, 31), 1);
+        assert_eq!(round_shr(i32::MIN, 32), -1);
+        assert_eq!(round_shr(i32::MAX, 32), 0);
+        assert_eq!(round_shr(i32::MIN, 40), 0);
+        assert_eq!(round_shr(7, 0), 7);
+    }
+
+    #[test]
+    fn saturation_edges() {
+        assert_eq!(sat_i16(40_000), i16::MAX);
+        assert_eq!(sat_i16(-40_000), i16::MIN);
+        assert_eq!(sat_i8(-129), i8::MIN);
+        assert_eq!(sat_shl(1, 31), i32::MAX);
+        assert_eq!(sat_shl(-1, 31), i32::MIN);
+        assert_eq!(sat_shl(-1, 30), -(1 << 30));
+        assert_eq!(sat_shl(1 << 20, 11), i32::MAX);
+        assert_eq!(sat_shl(-(1 << 20), 11), i32::MIN);
+        assert_eq!(sat_shl(-(1 << 20), 10), -(1 << 30));
+        assert!(saturates_i16(32_768));
+        assert!(!saturates_i16(-32_768));
+    }
+
+    #[test]
+    fn from_real_round_trips() {
+        for &s in &[1.0, 0.5, 0.75, 1e-6, 3.0e-12, 123.456, 0.999_999_999_9] {
+            let rq = Requant::from_real(s).unwrap();
+            assert!(rq.mult >= 1 << 30, "{s}: {rq:?}");
+            let back = rq.to_real();
+            assert!(((back - s) / s).abs() <= 1.0 / 2_147_483_648.0, "{s} -> {back}");
+        }
+        assert_eq!(Requant::ONE.to_real(), 1.0);
+        assert_eq!(Requant::from_real(1.0).unwrap(), Requant::ONE);
+        assert_eq!(Requant::from_real(0.0).unwrap().apply(12345), 0);
+        assert_eq!(Requant::from_real(-1.0), Err(ScaleError::NotFinitePositive));
+        assert_eq!(Requant::from_real(f64::NAN), Err(ScaleError::NotFinitePositive));
+        assert_eq!(Requant::from_real(1e-30), Err(ScaleError::OutOfRange));
+        assert_eq!(Requant::from_real(1e12), Err(ScaleError::OutOfRange));
+    }
+
+    #[test]
+    fn to_fixed_matches_fixed_crate() {
+        // Cross-check against the `fixed` crate's float-to-fixed conversion on
+        // values that are not ties (where every round-to-nearest rule agrees).
+        use fixed::types::I4F12;
+        for i in -2000..2000 {
+            let x = i as f64 * 0.003_7 + 0.000_01;
+            let ours = to_fixed_i32(x, 12);
+            let theirs = I4F12::saturating_from_num(x).to_bits() as i32;
+            assert_eq!(ours, theirs, "x = {x}");
+        }
+        // And the Q0.15 format used for hidden states.
+        use fixed::types::I1F15;
+        for i in -1000..=1000 {
+            let x = i as f64 / 1000.0 * 0.999;
+            assert_eq!(to_fixed_i32(x, 15), I1F15::from_num(x).to_bits() as i32);
+        }
+        // Ties follow Lapwing's documented rule: half away from zero.
+        assert_eq!(to_fixed_i32(2.5 / 4096.0, 12), 3);
+        assert_eq!(to_fixed_i32(-2.5 / 4096.0, 12), -3);
+        assert_eq!(to_fixed_i32(1e10, 12), i32::MAX);
+        assert_eq!(to_fixed_i32(f64::NAN, 12), 0);
+    }
+
+    #[test]
+    fn mul_q31_matches_fixed_crate() {
+        // The `fixed` crate's I1F31 multiply truncates; compare within 1 LSB
+        // and exactly against our own exact model.
+        use fixed::types::I1F31;
+        let vals = [i32::MIN + 1, -123_456_789, -1, 0, 1, 77, 1 << 30, 2_000_000_000];
+        for &a in &vals {
+            for &b in &vals {
+                let theirs = (I1F31::from_bits(a).wrapping_mul(I1F31::from_bits(b))).to_bits();
+                let ours = mul_q31(a, b);
+                assert!((ours as i64 - theirs as i64).abs() <= 1, "{a} * {b}");
+            }
+        }
+    }
+
+    proptest! {
+        #[test]
+        fn mul_q31_is_exact_rounding(a in any::<i32>(), b in any::<i32>()) {
+            let exact = exact_round_div_pow2(a as i128 * b as i128, 31);
+            let exact = exact.clamp(i32::MIN as i128, i32::MAX as i128);
+            prop_assert_eq!(mul_q31(a, b) as i128, exact);
+        }
+
+        #[test]
+        fn round_shr_is_exact_rounding(x in any::<i32>(), s in 0u32..40) {
+            prop_assert_eq!(round_shr(x, s) as i128, exact_round_div_pow2(x as i128, s));
+        }
+
+        #[test]
+        fn sat_shl_matches_exact(x in any::<i32>(), s in 0u32..40) {
+            let exact = (x as i128) << s.min(100);
+            let exact = exact.clamp(i32::MIN as i128, i32::MAX as i128);
+            prop_assert_eq!(sat_shl(x, s) as i128, exact);
+        }
+
+        #[test]
+        fn requant_within_one_lsb(acc in any::<i32>(), scale_exp in -40i32..20, mant in 0.5f64..1.0) {
+            // The Jacob et al. 2018 requantization rule against exact f64/i128 math.
+            let scale = mant * libm::exp2(scale_exp as f64);
+            let rq = Requant::from_real(scale).unwrap();
+            let exact = acc as f64 * rq.to_real();
+            let got = rq.apply(acc) as f64;
+            let clamped = exact.clamp(i32::MIN as f64, i32::MAX as f64);
+            prop_assert!((got - clamped).abs() <= 1.0, "acc {} scale {} got {} exact {}", acc, scale, got, exact);
+        }
+    }
+}

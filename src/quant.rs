@@ -1,0 +1,582 @@
+//! The integer-only LSTM step, scheme `w8a16`.
+//!
+//! # Numeric contract (DESIGN.md section 3)
+//! - **Weights**: `int8`, symmetric, one scale per row (per gate output
+//!   unit), values in `[-127, 127]`. Input normalization and the per-feature
+//!   input scale are folded into layer 0's weights and bias on the host.
+//! - **Input** `x`: `int16`, one real scale per feature (known only to the
+//!   quantizer, which folded it into the weights).
+//! - **Hidden** `h`: `int16` Q0.15.
+//! - **Gate pre-activation**: `i32` with 19 fractional bits
+//!   ([`crate::activation::PRE_FRAC`]). The two dot products
+//!   `acc_x = Wx·x` and `acc_h = Wh·h` are exact in `i32` (the constructor
+//!   proves no row can overflow for any input) and are requantized
+//!   separately with per-row (multiplier, shift) pairs, then summed with the
+//!   `i32` bias, saturating.
+//! - **Gate outputs**: Q0.31 from the lookup tables. A saturated forget gate
+//!   keeps 16 significant bits of `1 - f`, so a cell held for 10,000 steps
+//!   decays as the float one does (see the long-memory test).
+//! - **Cell**: `c16` is `int16` with `cell_frac` fractional bits chosen from
+//!   the calibrated range; `c32` is `i32` with `cell_frac` up to 31
+//!   (conventionally the c16 format plus 16 bits), which removes the dead
+//!   band where rounding of `f*c` stops a small 16-bit cell from decaying.
+//!   `c' = f*c + i*g`, saturating to the cell type.
+//! - **Hidden update**: `h' = o * tanh(c')`, rounded to Q0.15.
+//! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h + b)` with
+//!   the bias in accumulator units, saturated to `int16` with a per-output
+//!   scale.
+//! - **Rounding**: half away from zero everywhere ([`crate::fixed_point`]).
+//!
+//! # State
+//! Caller-owned `i16` words, [`QModel::state_words`] of them: per layer
+//! `h[H]` then the cell (`H` words for `c16`, `2H` for `c32`, each value as
+//! low then high half), then `H_max` words of scratch. All zero is the
+//! usual initial state. [`StateBuf`] gives a fixed-capacity buffer that fits
+//! in a `static`.
+
+use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
+use crate::fixed_point::{mul_q31, round_shr, sat_i16, shift_signed, Requant};
+use crate::float::check_len;
+use crate::{Error, Probe, MAX_LAYERS};
+use heapless::Vec as HVec;
+
+/// Width of the stored cell state.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+#[repr(u8)]
+pub enum CellWidth {
+    /// 16-bit cell: least RAM.
+    C16 = 0,
+    /// 32-bit cell: for long-memory models.
+    C32 = 1,
+}
+
+impl CellWidth {
+    /// `i16` words per cell value.
+    pub const fn words(self) -> usize {
+        match self {
+            CellWidth::C16 => 1,
+            CellWidth::C32 => 2,
+        }
+    }
+
+    /// Largest valid number of fractional bits of the cell.
+    pub const fn max_frac(self) -> u8 {
+        match self {
+            CellWidth::C16 => 15,
+            CellWidth::C32 => 31,
+        }
+    }
+
+    /// A short lower-case name (`c16`, `c32`).
+    pub fn name(self) -> &'static str {
+        match self {
+            CellWidth::C16 => "c16",
+            CellWidth::C32 => "c32",
+        }
+    }
+}
+
+/// Largest |value| of an `int16` input or hidden state, for the
+/// accumulator bound.
+const ACT_MAX: i64 = 32_768;
+
+/// One quantized LSTM layer (borrowed, typically from flash).
+#[derive(Clone, Copy, Debug)]
+pub struct QLayer<'a> {
+    input: usize,
+    hidden: usize,
+    w_x: &'a [i8],
+    w_h: &'a [i8],
+    bias: &'a [i32],
+    rq_x: &'a [i32],
+    rq_h: &'a [i32],
+    cell_frac: u8,
+}
+
+impl<'a> QLayer<'a> {
+    /// A layer with `input` features and `hidden` units.
+    ///
+    /// - `w_x`: `[4H, X]` int8, `w_h`: `[4H, H]` int8, row-major, gates
+    ///   `i, f, g, o`;
+    /// - `bias`: `[4H]` in pre-activation units (LSB `2^-19`);
+    /// - `rq_x`, `rq_h`: `[4H]` (multiplier, shift) pairs, interleaved
+    ///   (`8H` values), taking `acc_x`/`acc_h` to pre-activation units;
+    /// - `cell_frac`: fractional bits of the cell.
+    ///
+    /// # Errors
+    /// [`Error::Shape`] for wrong lengths or a zero dimension;
+    /// [`Error::Format`] for a multiplier outside `[0, 2^31)` or a shift
+    /// outside `[-31, 62]`; [`Error::AccumulatorBound`] when
+    /// `sum |w| * 32768` of a row exceeds `i32::MAX`. The cell format is
+    /// checked by [`QModel::new`], which knows the cell width.
+    #[allow(clippy::too_many_arguments)]
+    pub fn new(
+        input: usize,
+        hidden: usize,
+        w_x: &'a [i8],
+        w_h: &'a [i8],
+        bias: &'a [i32],
+        rq_x: &'a [i32],
+        rq_h: &'a [i32],
+        cell_frac: u8,
+    ) -> Result<Self, Error> {
+        if input == 0 || hidden == 0 {
+            return Err(Error::Shape { what: "layer dimension", expected: 1, got: 0 });
+        }
+        let rows = 4 * hidden;
+        check_len("w_x", w_x.len(), rows * input)?;
+        check_len("w_h", w_h.len(), rows * hidden)?;
+        check_len("bias", bias.len(), rows)?;
+        check_len("rq_x", rq_x.len(), 2 * rows)?;
+        check_len("rq_h", rq_h.len(), 2 * rows)?;
+        check_requant(rq_x)?;
+        check_requant(rq_h)?;
+        check_bound("input weights", 0, w_x, input)?;
+        check_bound("recurrent weights", 0, w_h, hidden)?;
+        Ok(QLayer { input, hidden, w_x, w_h, bias, rq_x, rq_h, cell_frac })
+    }
+
+    /// Input features X.
+    pub fn input(&self) -> usize {
+        self.input
+    }
+
+    /// Hidden units H.
+    pub fn hidden(&self) -> usize {
+        self.hidden
+    }
+
+    /// Fractional bits of the cell.
+    pub fn cell_frac(&self) -> u8 {
+        self.cell_frac
+    }
+
+    /// Weight and bias bytes of this layer as stored.
+    pub fn weight_bytes(&self) -> usize {
+        self.w_x.len() + self.w_h.len() + 4 * (self.bias.len() + self.rq_x.len() + self.rq_h.len())
+    }
+}
+
+fn check_requant(rq: &[i32]) -> Result<(), Error> {
+    for pair in rq.chunks_exact(2) {
+        if let [m, s] = pair {
+            if *m < 0 {
+                return Err(Error::Format { what: "requant multiplier", value: *m });
+            }
+            if !(-31..=62).contains(s) {
+                return Err(Error::Format { what: "requant shift", value: *s });
+            }
+        }
+    }
+    Ok(())
+}
+
+fn check_bound(what: &'static str, layer: usize, w: &[i8], cols: usize) -> Result<(), Error> {
+    for (row, r) in w.chunks_exact(cols).enumerate() {
+        let sum: i64 = r.iter().map(|v| (*v as i64).abs()).sum();
+        if sum * ACT_MAX > i32::MAX as i64 {
+            return Err(Error::AccumulatorBound { what, layer, row });
+        }
+    }
+    Ok(())
+}
+
+/// A quantized dense head `y = requant(W h + b)` (borrowed).
+#[derive(Clone, Copy, Debug)]
+pub struct QHead<'a> {
+    input: usize,
+    output: usize,
+    w: &'a [i8],
+    bias: &'a [i32],
+    rq: &'a [i32],
+}
+
+impl<'a> QHead<'a> {
+    /// A head from `input` hidden units to `output` values: `w` is `[Y, H]`
+    /// int8, `bias` `[Y]` in accumulator units, `rq` `[Y]` interleaved
+    /// (multiplier, shift) pairs taking the accumulator to the output's
+    /// `int16` scale.
+    ///
+    /// # Errors
+    /// As [`QLayer::new`].
+    pub fn new(input: usize, output: usize, w: &'a [i8], bias: &'a [i32], rq: &'a [i32]) -> Result<Self, Error> {
+        if input == 0 || output == 0 {
+            return Err(Error::Shape { what: "head dimension", expected: 1, got: 0 });
+        }
+        check_len("head weight", w.len(), input * output)?;
+        check_len("head bias", bias.len(), output)?;
+        check_len("head rq", rq.len(), 2 * output)?;
+        check_requant(rq)?;
+        check_bound("head weights", 0, w, input)?;
+        Ok(QHead { input, output, w, bias, rq })
+    }
+
+    /// Output values Y.
+    pub fn output(&self) -> usize {
+        self.output
+    }
+}
+
+/// A validated quantized model: after [`QModel::new`] succeeds, a step can
+/// fail only on the caller's buffer lengths.
+#[derive(Clone, Debug)]
+pub struct QModel<'a> {
+    layers: HVec<QLayer<'a>, MAX_LAYERS>,
+    head: Option<QHead<'a>>,
+    cell: CellWidth,
+    table: &'static ActTable,
+    table_kind: TableKind,
+}
+
+impl<'a> QModel<'a> {
+    /// Stacks validated layers and an optional head.
+    ///
+    /// # Errors
+    /// [`Error::LayerCount`]; [`Error::Shape`] when dimensions do not chain;
+    /// [`Error::Format`] when a layer's `cell_frac` exceeds the cell width's
+    /// maximum (15 for `c16`, 31 for `c32`).
+    pub fn new(
+        layers: &[QLayer<'a>],
+        head: Option<QHead<'a>>,
+        cell: CellWidth,
+        table: TableKind,
+    ) -> Result<Self, Error> {
+        if layers.is_empty() || layers.len() > MAX_LAYERS {
+            return Err(Error::LayerCount { got: layers.len() });
+        }
+        let mut v = HVec::new();
+        let mut prev: Option<usize> = None;
+        for l in layers {
+            if let Some(p) = prev {
+                check_len("layer input (previous hidden)", l.input, p)?;
+            }
+            if l.cell_frac > cell.max_frac() {
+                return Err(Error::Format { what: "cell_frac", value: l.cell_frac as i32 });
+            }
+            prev = Some(l.hidden);
+            v.push(*l).map_err(|_| Error::LayerCount { got: layers.len() })?;
+        }
+        if let (Some(h), Some(p)) = (&head, prev) {
+            check_len("head input (last hidden)", h.input, p)?;
+        }
+        Ok(QModel { layers: v, head, cell, table: table.table(), table_kind: table })
+    }
+
+    /// The layers, first to last.
+    pub fn layers(&self) -> &[QLayer<'a>] {
+        &self.layers
+    }
+
+    /// The head, if any.
+    pub fn head(&self) -> Option<&QHead<'a>> {
+        self.head.as_ref()
+    }
+
+    /// The cell width.
+    pub fn cell(&self) -> CellWidth {
+        self.cell
+    }
+
+    /// The activation table in use.
+    pub fn table_kind(&self) -> TableKind {
+        self.table_kind
+    }
+
+    /// Input features of the first layer.
+    pub fn input_len(&self) -> usize {
+        self.layers.first().map_or(0, |l| l.input)
+    }
+
+    /// Values one step writes: Y with a head, else the last H.
+    pub fn output_len(&self) -> usize {
+        match (&self.head, self.layers.last()) {
+            (Some(h), _) => h.output,
+            (None, Some(l)) => l.hidden,
+            (None, None) => 0,
+        }
+    }
+
+    /// `i16` words of caller-owned state (hidden, cell and scratch).
+    pub fn state_words(&self) -> usize {
+        state_words_for(self.layers.iter().map(|l| l.hidden), self.cell)
+    }
+
+    /// Multiply-accumulates per step (all dot products).
+    pub fn macs_per_step(&self) -> usize {
+        let layers: usize = self.layers.iter().map(|l| 4 * l.hidden * (l.input + l.hidden)).sum();
+        layers + self.head.as_ref().map_or(0, |h| h.input * h.output)
+    }
+
+    /// One time step on `int16` inputs; writes `int16` outputs (head values
+    /// in their per-output scale, or the last hidden state in Q0.15).
+    ///
+    /// # Errors
+    /// [`Error::StateSize`], [`Error::InputSize`], [`Error::OutputSize`] when
+    /// a buffer has the wrong length; nothing is modified then.
+    pub fn step(&self, state: &mut [i16], x: &[i16], out: &mut [i16]) -> Result<(), Error> {
+        self.step_probed(state, x, out, &mut ())
+    }
+
+    /// [`QModel::step`] reporting every gate, cell and hidden value to `probe`.
+    ///
+    /// # Errors
+    /// As [`QModel::step`].
+    pub fn step_probed<P: Probe<i32>>(
+        &self,
+        state: &mut [i16],
+        x: &[i16],
+        out: &mut [i16],
+        probe: &mut P,
+    ) -> Result<(), Error> {
+        let need = self.state_words();
+        if state.len() != need {
+            return Err(Error::StateSize { expected: need, got: state.len() });
+        }
+        if x.len() != self.input_len() {
+            return Err(Error::InputSize { expected: self.input_len(), got: x.len() });
+        }
+        if out.len() != self.output_len() {
+            return Err(Error::OutputSize { expected: self.output_len(), got: out.len() });
+        }
+        let cw = self.cell.words();
+        let layer_words: usize = self.layers.iter().map(|l| l.hidden * (1 + cw)).sum();
+        let (mut rest, scratch) = state.split_at_mut(layer_words);
+        let mut prev_h: Option<&[i16]> = None;
+        for (k, layer) in self.layers.iter().enumerate() {
+            let (hc, tail) = rest.split_at_mut(layer.hidden * (1 + cw));
+            rest = tail;
+            let (h, c) = hc.split_at_mut(layer.hidden);
+            let input = prev_h.unwrap_or(x);
+            layer_step(layer, k, self.cell, self.table, input, h, c, scratch, probe);
+            prev_h = Some(h);
+        }
+        let last = prev_h.unwrap_or(x);
+        match &self.head {
+            Some(head) => {
+                let rows = head.w.chunks_exact(head.input).zip(head.bias).zip(head.rq.chunks_exact(2));
+                for (o, ((row, b), rq)) in out.iter_mut().zip(rows) {
+                    let acc = dot(row, last).saturating_add(*b);
+                    *o = sat_i16(requant(rq, acc));
+                }
+            }
+            None => {
+                for (o, v) in out.iter_mut().zip(last) {
+                    *o = *v;
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+/// `i16` state words for layers of the given hidden sizes and cell width:
+/// `sum(H * (1 + cell words)) + max(H)`.
+pub fn state_words_for(hidden: impl Iterator<Item = usize> + Clone, cell: CellWidth) -> usize {
+    let hmax = hidden.clone().max().unwrap_or(0);
+    hidden.map(|h| h * (1 + cell.words())).sum::<usize>() + hmax
+}
+
+/// A fixed-capacity, zero-initialised state buffer that can live in a
+/// `static` (`N` `i16` words; check `N >= model.state_words()` at start-up,
+/// or let [`QModel::step`] report [`Error::StateSize`] on the slice).
+#[derive(Clone, Debug)]
+pub struct StateBuf<const N: usize> {
+    words: [i16; N],
+}
+
+impl<const N: usize> StateBuf<N> {
+    /// All-zero state.
+    pub const fn new() -> Self {
+        StateBuf { words: [0; N] }
+    }
+
+    /// The first `len` words, or `None` when the capacity is smaller.
+    pub fn words_mut(&mut self, len: usize) -> Option<&mut [i16]> {
+        self.words.get_mut(..len)
+    }
+
+    /// Zeroes the state (a new sequence).
+    pub fn reset(&mut self) {
+        self.words = [0; N];
+    }
+}
+
+impl<const N: usize> Default for StateBuf<N> {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+#[inline]
+fn requant(rq: &[i32], acc: i32) -> i32 {
+    match rq {
+        [mult, shift] => Requant { mult: *mult, shift: *shift }.apply(acc),
+        _ => 0,
+    }
+}
+
+/// Exact int8 x int16 dot product. The constructor's bound check proves the
+/// sum fits in `i32`; `wrapping_add` only avoids a debug-mode panic path.
+#[inline]
+fn dot(w: &[i8], v: &[i16]) -> i32 {
+    w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(*a as i32 * *b as i32))
+}
+
+#[inline]
+fn read_cell(c: &[i16], j: usize, cell: CellWidth) -> i32 {
+    match cell {
+        CellWidth::C16 => c.get(j).copied().unwrap_or(0) as i32,
+        CellWidth::C32 => {
+            let lo = c.get(2 * j).copied().unwrap_or(0) as u16 as u32;
+            let hi = c.get(2 * j + 1).copied().unwrap_or(0) as u16 as u32;
+            ((hi << 16) | lo) as i32
+        }
+    }
+}
+
+#[inline]
+fn write_cell(c: &mut [i16], j: usize, cell: CellWidth, v: i32) {
+    match cell {
+        CellWidth::C16 => {
+            if let Some(s) = c.get_mut(j) {
+                *s = v as i16;
+            }
+        }
+        CellWidth::C32 => {
+            if let Some(s) = c.get_mut(2 * j) {
+                *s = v as u32 as u16 as i16;
+            }
+            if let Some(s) = c.get_mut(2 * j + 1) {
+                *s = ((v as u32) >> 16) as u16 as i16;
+            }
+        }
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn layer_step<P: Probe<i32>>(
+    layer: &QLayer<'_>,
+    k: usize,
+    cell: CellWidth,
+    table: &ActTable,
+    x: &[i16],
+    h: &mut [i16],
+    c: &mut [i16],
+    scratch: &mut [i16],
+    probe: &mut P,
+) {
+    let hd = layer.hidden;
+    let xi = layer.input;
+    let frac = layer.cell_frac as u32;
+    let pre_of = |r: usize| -> i32 {
+        let wx = layer.w_x.get(r * xi..(r + 1) * xi).unwrap_or(&[]);
+        let wh = layer.w_h.get(r * hd..(r + 1) * hd).unwrap_or(&[]);
+        let rqx = layer.rq_x.get(2 * r..2 * r + 2).unwrap_or(&[]);
+        let rqh = layer.rq_h.get(2 * r..2 * r + 2).unwrap_or(&[]);
+        let b = layer.bias.get(r).copied().unwrap_or(0);
+        requant(rqx, dot(wx, x)).saturating_add(requant(rqh, dot(wh, h))).saturating_add(b)
+    };
+    for (j, hn) in scratch.iter_mut().enumerate().take(hd) {
+        let pre = [pre_of(j), pre_of(hd + j), pre_of(2 * hd + j), pre_of(3 * hd + j)];
+        let gi = sigmoid(table, pre[0]);
+        let gf = sigmoid(table, pre[1]);
+        let gg = tanh(table, pre[2]);
+        let go = sigmoid(table, pre[3]);
+        let c_old = read_cell(c, j, cell);
+        let fc = mul_q31(gf, c_old);
+        let ig = round_shr(mul_q31(gi, gg), 31 - frac);
+        let mut c_new = fc.saturating_add(ig);
+        if cell == CellWidth::C16 {
+            c_new = sat_i16(c_new) as i32;
+        }
+        let t = tanh(table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
+        let h_new = sat_i16(round_shr(mul_q31(go, t), 16));
+        probe.gates(k, j, &pre, &[gi, gf, gg, go]);
+        probe.state(k, j, c_new, h_new as i32);
+        write_cell(c, j, cell, c_new);
+        *hn = h_new;
+    }
+    for (hv, s) in h.iter_mut().zip(scratch.iter()) {
+        *hv = *s;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    static STATIC_STATE: StateBuf<64> = StateBuf::new();
+
+    fn tiny(cell: CellWidth) -> ([i8; 4], [i8; 4], [i32; 4], [i32; 8]) {
+        let rq = Requant::from_real(1.0).unwrap();
+        let pair = [rq.mult, rq.shift];
+        let mut rqs = [0i32; 8];
+        for ch in rqs.chunks_exact_mut(2) {
+            ch.copy_from_slice(&pair);
+        }
+        let _ = cell;
+        ([10, 10, 10, 10], [0; 4], [0; 4], rqs)
+    }
+
+    #[test]
+    fn state_fits_in_a_static() {
+        // The buffer type has a const constructor, so firmware can keep state in a static.
+        assert_eq!(STATIC_STATE.words.len(), 64);
+    }
+
+    #[test]
+    fn cell_words_round_trip() {
+        let mut c = [0i16; 4];
+        for v in [0, 1, -1, i32::MAX, i32::MIN, 123_456_789, -98_765] {
+            write_cell(&mut c, 1, CellWidth::C32, v);
+            assert_eq!(read_cell(&c, 1, CellWidth::C32), v);
+        }
+    }
+
+    #[test]
+    fn wrong_sizes_are_errors_not_panics() {
+        let (wx, wh, b, rq) = tiny(CellWidth::C16);
+        let l = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap();
+        let m = QModel::new(&[l], None, CellWidth::C16, TableKind::Standard).unwrap();
+        assert_eq!(m.state_words(), 3);
+        let mut st = [0i16; 2];
+        assert_eq!(m.step(&mut st, &[1], &mut [0]), Err(Error::StateSize { expected: 3, got: 2 }));
+        let mut st = [0i16; 3];
+        assert_eq!(m.step(&mut st, &[1, 2], &mut [0]), Err(Error::InputSize { expected: 1, got: 2 }));
+        assert_eq!(m.step(&mut st, &[1], &mut []), Err(Error::OutputSize { expected: 1, got: 0 }));
+        assert_eq!(st, [0; 3]);
+        assert!(matches!(
+            QModel::new(&[l], None, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()),
+            Ok(4)
+        ));
+        let bad = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 20).unwrap();
+        assert_eq!(
+            QModel::new(&[bad], None, CellWidth::C16, TableKind::Standard).unwrap_err(),
+            Error::Format { what: "cell_frac", value: 20 }
+        );
+    }
+
+    #[test]
+    fn accumulator_bound_is_enforced() {
+        // 600 weights of 127 times 32768 exceeds 2^31: refused.
+        let wx = [127i8; 4 * 600];
+        let wh = [0i8; 4];
+        let b = [0i32; 4];
+        let rq = [1 << 30, 0, 1 << 30, 0, 1 << 30, 0, 1 << 30, 0];
+        assert_eq!(
+            QLayer::new(600, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap_err(),
+            Error::AccumulatorBound { what: "input weights", layer: 0, row: 0 }
+        );
+        assert!(QLayer::new(516, 1, &wx[..4 * 516], &wh, &b, &rq, &rq, 13).is_ok());
+    }
+
+    #[test]
+    fn bad_requant_is_refused() {
+        let (wx, wh, b, mut rq) = tiny(CellWidth::C16);
+        rq[1] = 99;
+        assert_eq!(
+            QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap_err(),
+            Error::Format { what: "requant shift", value: 99 }
+        );
+    }
+}
