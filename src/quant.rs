@@ -22,9 +22,9 @@
 //!   band where rounding of `f*c` stops a small 16-bit cell from decaying.
 //!   `c' = f*c + i*g`, saturating to the cell type.
 //! - **Hidden update**: `h' = o * tanh(c')`, rounded to Q0.15.
-//! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h + b)` with
-//!   the bias in accumulator units, saturated to `int16` with a per-output
-//!   scale.
+//! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h) + b`
+//!   with the bias in output units (so a large output offset cannot
+//!   overflow the accumulator), saturated to `int16` with a per-output scale.
 //! - **Rounding**: half away from zero everywhere ([`crate::fixed_point`]).
 //!
 //! # State
@@ -181,7 +181,7 @@ fn check_bound(what: &'static str, layer: usize, w: &[i8], cols: usize) -> Resul
     Ok(())
 }
 
-/// A quantized dense head `y = requant(W h + b)` (borrowed).
+/// A quantized dense head `y = requant(W h) + b` (borrowed).
 #[derive(Clone, Copy, Debug)]
 pub struct QHead<'a> {
     input: usize,
@@ -193,7 +193,7 @@ pub struct QHead<'a> {
 
 impl<'a> QHead<'a> {
     /// A head from `input` hidden units to `output` values: `w` is `[Y, H]`
-    /// int8, `bias` `[Y]` in accumulator units, `rq` `[Y]` interleaved
+    /// int8, `bias` `[Y]` in output units, `rq` `[Y]` interleaved
     /// (multiplier, shift) pairs taking the accumulator to the output's
     /// `int16` scale.
     ///
@@ -355,8 +355,7 @@ impl<'a> QModel<'a> {
             Some(head) => {
                 let rows = head.w.chunks_exact(head.input).zip(head.bias).zip(head.rq.chunks_exact(2));
                 for (o, ((row, b), rq)) in out.iter_mut().zip(rows) {
-                    let acc = dot(row, last).saturating_add(*b);
-                    *o = sat_i16(requant(rq, acc));
+                    *o = sat_i16(requant(rq, dot(row, last)).saturating_add(*b));
                 }
             }
             None => {

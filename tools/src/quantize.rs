@@ -1,0 +1,298 @@
+//! The host quantizer: float model + calibrated ranges -> integer model.
+//!
+//! Scheme `w8a16` (DESIGN.md section 3, and the module docs of
+//! [`lapwing::quant`] for the device side):
+//! - input scale per feature `s_x = absmax * headroom / 32767`, folded into
+//!   layer 0's weights (`W'[r][c] = W[r][c] * s_x[c]`); deeper layers see
+//!   `h` in Q0.15 (`s = 2^-15`);
+//! - weights int8 symmetric per row: `scale_r = max|W'[r]| / 127`,
+//!   `q = round(W' / scale_r)` (ties away from zero);
+//! - requantization to pre-activation units (`2^-19`):
+//!   `M = scale_r * 2^19`, as a Q31 multiplier and shift;
+//! - bias: `round(b * 2^19)`;
+//! - cell: `c16` holds `15 - ceil(log2(absmax_c * headroom))` fractional bits,
+//!   `c32` 16 more;
+//! - head: int8 per row, output scale `absmax_y * headroom / 32767`, bias in
+//!   output units.
+//!
+//! Every row's worst-case accumulator `sum |q| * 32768` is checked against
+//! `i32::MAX` before anything is built; a row that could overflow is refused
+//! with its layer and row named.
+
+use crate::calibrate::Ranges;
+use crate::float_model::FloatModelData;
+use anyhow::{bail, Context, Result};
+use lapwing::activation::{TableKind, PRE_FRAC};
+use lapwing::fixed_point::{to_fixed_i32, Requant};
+use lapwing::quant::{CellWidth, QHead, QLayer, QModel};
+
+/// Options of the quantizer.
+#[derive(Clone, Copy, Debug)]
+pub struct QuantOptions {
+    /// Cell width. Default `c16`.
+    pub cell: CellWidth,
+    /// Activation table. Default standard.
+    pub table: TableKind,
+    /// Range headroom above the calibrated maximum (default 1.25, common
+    /// practice to leave room for unseen data).
+    pub headroom: f32,
+}
+
+impl Default for QuantOptions {
+    fn default() -> Self {
+        QuantOptions { cell: CellWidth::C16, table: TableKind::Standard, headroom: 1.25 }
+    }
+}
+
+/// One quantized layer, owned.
+#[derive(Clone, Debug, PartialEq)]
+pub struct QuantLayerData {
+    /// Input features X.
+    pub input: usize,
+    /// Hidden units H.
+    pub hidden: usize,
+    /// `[4H, X]` int8.
+    pub w_x: Vec<i8>,
+    /// `[4H, H]` int8.
+    pub w_h: Vec<i8>,
+    /// `[4H]` in pre-activation units.
+    pub bias: Vec<i32>,
+    /// `[4H]` (multiplier, shift) pairs for `acc_x`.
+    pub rq_x: Vec<i32>,
+    /// `[4H]` (multiplier, shift) pairs for `acc_h`.
+    pub rq_h: Vec<i32>,
+    /// Fractional bits of the cell.
+    pub cell_frac: u8,
+}
+
+/// The quantized head, owned.
+#[derive(Clone, Debug, PartialEq)]
+pub struct QuantHeadData {
+    /// Input H.
+    pub input: usize,
+    /// Outputs Y.
+    pub output: usize,
+    /// `[Y, H]` int8.
+    pub w: Vec<i8>,
+    /// `[Y]` in output units.
+    pub bias: Vec<i32>,
+    /// `[Y]` (multiplier, shift) pairs.
+    pub rq: Vec<i32>,
+}
+
+/// A quantized model, owned, with the real scales of its edges so the host
+/// can feed float data and read float results.
+#[derive(Clone, Debug, PartialEq)]
+pub struct QuantModelData {
+    /// Cell width.
+    pub cell: CellWidth,
+    /// Activation table.
+    pub table: TableKind,
+    /// Layers.
+    pub layers: Vec<QuantLayerData>,
+    /// Optional head.
+    pub head: Option<QuantHeadData>,
+    /// Real value of one input LSB, per feature.
+    pub input_scale: Vec<f32>,
+    /// Real value of one output LSB, per output.
+    pub output_scale: Vec<f32>,
+}
+
+impl QuantModelData {
+    /// A validated view the core runs.
+    ///
+    /// # Errors
+    /// Any validation failure from the core.
+    pub fn view(&self) -> Result<QModel<'_>> {
+        let layers = self
+            .layers
+            .iter()
+            .enumerate()
+            .map(|(k, l)| {
+                QLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.bias, &l.rq_x, &l.rq_h, l.cell_frac)
+                    .map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let head = match &self.head {
+            Some(h) => Some(QHead::new(h.input, h.output, &h.w, &h.bias, &h.rq).map_err(|e| anyhow::anyhow!("head: {e}"))?),
+            None => None,
+        };
+        QModel::new(&layers, head, self.cell, self.table).map_err(|e| anyhow::anyhow!("model: {e}"))
+    }
+
+    /// Float inputs to device integers: `round(x / s_x)`, saturating.
+    pub fn quantize_input(&self, x: &[f32]) -> Vec<i16> {
+        x.iter()
+            .zip(&self.input_scale)
+            .map(|(v, s)| to_fixed_i32((*v / *s) as f64, 0).clamp(i16::MIN as i32, i16::MAX as i32) as i16)
+            .collect()
+    }
+
+    /// Device outputs to real values.
+    pub fn dequantize_output(&self, y: &[i16]) -> Vec<f32> {
+        y.iter().zip(&self.output_scale).map(|(v, s)| *v as f32 * s).collect()
+    }
+}
+
+fn requant_pair(scale: f64, what: &str) -> Result<[i32; 2]> {
+    let rq = Requant::from_real(scale).map_err(|e| anyhow::anyhow!("{what}: scale {scale:e}: {e}"))?;
+    Ok([rq.mult, rq.shift])
+}
+
+/// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`.
+/// Returns int8 values and per-row real scales.
+fn quantize_rows(w: &[f32], cols: usize, col_scale: &[f64]) -> (Vec<i8>, Vec<f64>) {
+    let mut q = Vec::with_capacity(w.len());
+    let mut scales = Vec::with_capacity(w.len() / cols.max(1));
+    for row in w.chunks_exact(cols) {
+        let folded: Vec<f64> = row.iter().zip(col_scale).map(|(v, s)| *v as f64 * s).collect();
+        let m = folded.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+        let scale = m / 127.0;
+        scales.push(scale);
+        for v in folded {
+            let qv = if scale == 0.0 { 0 } else { to_fixed_i32(v / scale, 0).clamp(-127, 127) };
+            q.push(qv as i8);
+        }
+    }
+    (q, scales)
+}
+
+fn check_bound(q: &[i8], cols: usize, what: &str) -> Result<()> {
+    for (r, row) in q.chunks_exact(cols).enumerate() {
+        let sum: i64 = row.iter().map(|v| (*v as i64).abs()).sum();
+        if sum * 32_768 > i32::MAX as i64 {
+            bail!(
+                "{what}, row {r}: worst-case accumulator {} exceeds 2^31 - 1 ({} columns); \
+                 the w8a16 scheme supports rows up to 516 columns at full scale",
+                sum * 32_768,
+                cols
+            );
+        }
+    }
+    Ok(())
+}
+
+fn scale_for(absmax: f32, headroom: f32) -> f64 {
+    let m = absmax as f64 * headroom as f64;
+    if m > 0.0 && m.is_finite() {
+        m / 32_767.0
+    } else {
+        1.0 / 32_767.0
+    }
+}
+
+/// Fractional bits of a 16-bit cell for a calibrated |c| maximum.
+pub fn cell_frac16(absmax: f32, headroom: f32) -> u8 {
+    let m = (absmax * headroom).max(1e-6) as f64;
+    let int_bits = m.log2().ceil().clamp(0.0, 15.0) as i32;
+    (15 - int_bits) as u8
+}
+
+/// Quantizes `model` with the observed `ranges`.
+///
+/// # Errors
+/// Non-finite weights, ranges that do not match the model, a scale no Q31
+/// multiplier can hold, or a row whose accumulator could overflow.
+pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) -> Result<QuantModelData> {
+    model.check_finite()?;
+    if ranges.layers.len() != model.layers.len() || ranges.input_absmax.len() != model.input_len() {
+        bail!(
+            "calibration ranges are for {} layers and {} inputs, the model has {} and {}",
+            ranges.layers.len(),
+            ranges.input_absmax.len(),
+            model.layers.len(),
+            model.input_len()
+        );
+    }
+    if !(opts.headroom.is_finite() && opts.headroom >= 1.0) {
+        bail!("headroom {} must be at least 1", opts.headroom);
+    }
+    let pre_unit = (1u64 << PRE_FRAC) as f64;
+    let input_scale: Vec<f64> = ranges.input_absmax.iter().map(|m| scale_for(*m, opts.headroom)).collect();
+    let hidden_scale = 1.0 / 32_768.0;
+    let mut layers = Vec::new();
+    for (k, (l, r)) in model.layers.iter().zip(&ranges.layers).enumerate() {
+        let col_x: Vec<f64> = if k == 0 { input_scale.clone() } else { vec![hidden_scale; l.input] };
+        let col_h = vec![hidden_scale; l.hidden];
+        let (w_x, sx) = quantize_rows(&l.w_x, l.input, &col_x);
+        let (w_h, sh) = quantize_rows(&l.w_h, l.hidden, &col_h);
+        check_bound(&w_x, l.input, &format!("layer {k} input weights"))?;
+        check_bound(&w_h, l.hidden, &format!("layer {k} recurrent weights"))?;
+        let mut rq_x = Vec::with_capacity(8 * l.hidden);
+        let mut rq_h = Vec::with_capacity(8 * l.hidden);
+        for (row, (a, b)) in sx.iter().zip(&sh).enumerate() {
+            rq_x.extend(requant_pair(a * pre_unit, &format!("layer {k} input row {row}"))?);
+            rq_h.extend(requant_pair(b * pre_unit, &format!("layer {k} recurrent row {row}"))?);
+        }
+        let bias = l.b.iter().map(|b| to_fixed_i32(*b as f64, PRE_FRAC as i32)).collect();
+        let frac16 = cell_frac16(r.cell_absmax, opts.headroom);
+        let cell_frac = match opts.cell {
+            CellWidth::C16 => frac16,
+            CellWidth::C32 => frac16 + 16,
+        };
+        layers.push(QuantLayerData { input: l.input, hidden: l.hidden, w_x, w_h, bias, rq_x, rq_h, cell_frac });
+    }
+    let (head, output_scale) = match &model.head {
+        Some(h) => {
+            let (w, sw) = quantize_rows(&h.w, h.input, &vec![hidden_scale; h.input]);
+            check_bound(&w, h.input, "head weights")?;
+            let out_scale: Vec<f64> = ranges.output_absmax.iter().map(|m| scale_for(*m, opts.headroom)).collect();
+            if out_scale.len() != h.output {
+                bail!("calibration has {} outputs, the head has {}", out_scale.len(), h.output);
+            }
+            let mut rq = Vec::new();
+            for (row, (s, so)) in sw.iter().zip(&out_scale).enumerate() {
+                rq.extend(requant_pair(s / so, &format!("head row {row}"))?);
+            }
+            let bias = h.b.iter().zip(&out_scale).map(|(b, so)| to_fixed_i32(*b as f64 / so, 0)).collect();
+            let head = QuantHeadData { input: h.input, output: h.output, w, bias, rq };
+            (Some(head), out_scale.iter().map(|s| *s as f32).collect())
+        }
+        None => {
+            let hd = model.layers.last().map_or(0, |l| l.hidden);
+            (None, vec![hidden_scale as f32; hd])
+        }
+    };
+    let q = QuantModelData {
+        cell: opts.cell,
+        table: opts.table,
+        layers,
+        head,
+        input_scale: input_scale.iter().map(|s| *s as f32).collect(),
+        output_scale,
+    };
+    q.view().context("the quantized model failed the core's validation")?;
+    Ok(q)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::synth::{random_model, ModelSpec};
+
+    #[test]
+    fn overflowing_rows_are_refused_with_a_name() {
+        // 600 inputs at full scale: 127 * 600 * 32768 > 2^31.
+        let spec = ModelSpec { input: 600, hidden: 2, layers: 1, output: None, gain: 1.0 };
+        let mut m = random_model(&spec, 3);
+        for v in &mut m.layers[0].w_x {
+            *v = 0.5;
+        }
+        let ranges = Ranges {
+            input_absmax: vec![1.0; 600],
+            layers: vec![Default::default()],
+            output_absmax: vec![1.0; 2],
+            steps: 1,
+        };
+        let e = quantize(&m, &ranges, &QuantOptions::default()).unwrap_err().to_string();
+        assert!(e.contains("layer 0 input weights, row 0") && e.contains("exceeds"), "{e}");
+    }
+
+    #[test]
+    fn cell_formats_follow_the_range() {
+        assert_eq!(cell_frac16(0.7, 1.25), 15);
+        assert_eq!(cell_frac16(1.0, 1.25), 14);
+        assert_eq!(cell_frac16(3.0, 1.25), 13);
+        assert_eq!(cell_frac16(1e9, 1.25), 0);
+    }
+}
