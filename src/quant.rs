@@ -21,7 +21,8 @@
 //!   (conventionally the c16 format plus 16 bits), which removes the dead
 //!   band where rounding of `f*c` stops a small 16-bit cell from decaying.
 //!   `c' = f*c + i*g`, saturating to the cell type.
-//! - **Hidden update**: `h' = o * tanh(c')`, rounded to Q0.15.
+//! - **Hidden update**: `h' = o * tanh(c')`, rounded to Q0.15 and clamped to
+//!   `[-32767, 32767]` (symmetric, like the float value's open interval).
 //! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h) + b`
 //!   with the bias in output units (so a large output offset cannot
 //!   overflow the accumulator), saturated to `int16` with a per-output scale.
@@ -489,7 +490,9 @@ fn layer_step<P: Probe<i32>>(
             c_new = sat_i16(c_new) as i32;
         }
         let t = tanh(table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
-        let h_new = sat_i16(round_shr(mul_q31(go, t), 16));
+        // |o * tanh| < 1, but rounding can reach -1.0 (-32768): clamp
+        // symmetrically so h stays in (-1, 1) like the float value.
+        let h_new = round_shr(mul_q31(go, t), 16).clamp(-(i16::MAX as i32), i16::MAX as i32) as i16;
         probe.gates(k, j, &pre, &[gi, gf, gg, go]);
         probe.state(k, j, c_new, h_new as i32);
         write_cell(c, j, cell, c_new);
