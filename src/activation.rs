@@ -246,21 +246,13 @@ static COMPACT_MANT: [u16; COMPACT_LEN] = build_mantissas::<COMPACT_LEN>(COMPACT
 ///
 /// Measured bound: sigmoid within 1.12 LSB of Q0.16, tanh within 1.11 LSB
 /// of Q0.15 (asserted <= 1.5, DESIGN.md section 9; exhaustive test `standard_table_error_bound`).
-pub static STANDARD: ActTable = ActTable {
-    log2_knots: STANDARD_LOG2,
-    shifts: SHIFTS,
-    mant: &STANDARD_MANT,
-};
+pub static STANDARD: ActTable = ActTable { log2_knots: STANDARD_LOG2, shifts: SHIFTS, mant: &STANDARD_MANT };
 
 /// The small table for tight flash: 8 knot intervals per unit, 304 bytes.
 ///
 /// Measured bound: sigmoid within 6.5 LSB of Q0.16, tanh within 6.5 LSB of
 /// Q0.15 (exhaustive test `compact_table_error_bound`).
-pub static COMPACT: ActTable = ActTable {
-    log2_knots: COMPACT_LOG2,
-    shifts: SHIFTS,
-    mant: &COMPACT_MANT,
-};
+pub static COMPACT: ActTable = ActTable { log2_knots: COMPACT_LOG2, shifts: SHIFTS, mant: &COMPACT_MANT };
 
 /// Which built-in table a model uses (stored in the model as a byte).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]

@@ -212,11 +212,7 @@ impl Requant {
             let p = acc as i64 * self.mult as i64; // |p| < 2^62
             let s = self.shift.unsigned_abs();
             let r = 31_u32.saturating_sub(s);
-            let mag = if r == 0 {
-                p.unsigned_abs()
-            } else {
-                (p.unsigned_abs() + (1u64 << (r - 1))) >> r
-            };
+            let mag = if r == 0 { p.unsigned_abs() } else { (p.unsigned_abs() + (1u64 << (r - 1))) >> r };
             let v = if p < 0 { -(mag as i64) } else { mag as i64 };
             if v > i32::MAX as i64 {
                 i32::MAX

@@ -54,13 +54,7 @@ impl<'a> FloatLayer<'a> {
     ///
     /// # Errors
     /// [`Error::Shape`] when a slice length does not match, or a dimension is 0.
-    pub fn new(
-        input: usize,
-        hidden: usize,
-        w_x: &'a [f32],
-        w_h: &'a [f32],
-        b: &'a [f32],
-    ) -> Result<Self, Error> {
+    pub fn new(input: usize, hidden: usize, w_x: &'a [f32], w_h: &'a [f32], b: &'a [f32]) -> Result<Self, Error> {
         if input == 0 || hidden == 0 {
             return Err(Error::Shape { what: "layer dimension", expected: 1, got: 0 });
         }
@@ -302,10 +296,7 @@ mod tests {
         assert!(matches!(FloatModel::new(&[], None), Err(Error::LayerCount { got: 0 })));
         let m = FloatModel::new(&[l1], None).unwrap();
         let mut st = [0.0f32; 2];
-        assert_eq!(
-            m.step(&mut st, &[0.0, 0.0], &mut [0.0]).unwrap_err(),
-            Error::StateSize { expected: 3, got: 2 }
-        );
+        assert_eq!(m.step(&mut st, &[0.0, 0.0], &mut [0.0]).unwrap_err(), Error::StateSize { expected: 3, got: 2 });
         let mut st = [0.0f32; 3];
         assert!(matches!(m.step(&mut st, &[0.0], &mut [0.0]), Err(Error::InputSize { .. })));
         assert!(matches!(m.step(&mut st, &[0.0, 0.0], &mut []), Err(Error::OutputSize { .. })));

@@ -547,10 +547,7 @@ mod tests {
         assert_eq!(m.step(&mut st, &[1, 2], &mut [0]), Err(Error::InputSize { expected: 1, got: 2 }));
         assert_eq!(m.step(&mut st, &[1], &mut []), Err(Error::OutputSize { expected: 1, got: 0 }));
         assert_eq!(st, [0; 3]);
-        assert!(matches!(
-            QModel::new(&[l], None, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()),
-            Ok(4)
-        ));
+        assert!(matches!(QModel::new(&[l], None, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()), Ok(4)));
         let bad = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 20).unwrap();
         assert_eq!(
             QModel::new(&[bad], None, CellWidth::C16, TableKind::Standard).unwrap_err(),

@@ -8,7 +8,8 @@ use lapwing::quant::{CellWidth, QHead, QLayer, QModel};
 use proptest::prelude::*;
 
 fn requant_pairs(n: usize) -> impl Strategy<Value = Vec<i32>> {
-    prop::collection::vec((0i32..=i32::MAX, -31i32..=62), n).prop_map(|v| v.into_iter().flat_map(|(m, s)| [m, s]).collect())
+    prop::collection::vec((0i32..=i32::MAX, -31i32..=62), n)
+        .prop_map(|v| v.into_iter().flat_map(|(m, s)| [m, s]).collect())
 }
 
 #[derive(Debug, Clone)]

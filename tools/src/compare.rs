@@ -75,7 +75,8 @@ pub fn compare(float: &FloatModelData, quant: &QuantModelData, inputs: &[Vec<f32
     }
     let fm = float.view()?;
     let qm = quant.view()?;
-    if fm.layers().len() != qm.layers().len() || fm.input_len() != qm.input_len() || fm.output_len() != qm.output_len() {
+    if fm.layers().len() != qm.layers().len() || fm.input_len() != qm.input_len() || fm.output_len() != qm.output_len()
+    {
         bail!("the float model and the quantized model have different shapes");
     }
     let hidden: Vec<usize> = fm.layers().iter().map(|l| l.hidden()).collect();
@@ -103,8 +104,8 @@ pub fn compare(float: &FloatModelData, quant: &QuantModelData, inputs: &[Vec<f32
             for j in 0..hidden[k] {
                 h_acc[k].add(fc.hidden[k][j] as f64, qc.hidden[k][j] as f64 / 32_768.0);
                 c_acc[k].add(fc.cell[k][j] as f64, qc.cell[k][j] as f64 * cell_unit[k]);
-                for g in 0..4 {
-                    g_acc[k][g].add(fc.gates[k][j][g] as f64, qc.gates[k][j][g] as f64 / ONE_Q31);
+                for ((acc, f), q) in g_acc[k].iter_mut().zip(fc.gates[k][j]).zip(qc.gates[k][j]) {
+                    acc.add(f as f64, q as f64 / ONE_Q31);
                 }
             }
         }

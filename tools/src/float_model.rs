@@ -55,8 +55,7 @@ impl FloatModelData {
             .iter()
             .enumerate()
             .map(|(k, l)| {
-                FloatLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.b)
-                    .map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
+                FloatLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.b).map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
             })
             .collect::<Result<Vec<_>>>()?;
         let head = match &self.head {
@@ -102,12 +101,7 @@ impl FloatModelData {
     pub fn fold_normalization(&mut self, mean: &[f32], std: &[f32]) -> Result<()> {
         let Some(l0) = self.layers.first_mut() else { bail!("model has no layers") };
         if mean.len() != l0.input || std.len() != l0.input {
-            bail!(
-                "normalization has {} means and {} stds, layer 0 takes {} features",
-                mean.len(),
-                std.len(),
-                l0.input
-            );
+            bail!("normalization has {} means and {} stds, layer 0 takes {} features", mean.len(), std.len(), l0.input);
         }
         if let Some(i) = std.iter().position(|s| !(s.is_finite() && *s > 0.0)) {
             bail!("norm.std[{i}] = {} must be finite and positive", std[i]);
@@ -148,7 +142,10 @@ mod tests {
 
     #[test]
     fn folding_normalization_matches_normalizing_inputs() {
-        let base = crate::synth::random_model(&crate::synth::ModelSpec { input: 3, hidden: 4, layers: 1, output: Some(2), gain: 1.0 }, 7);
+        let base = crate::synth::random_model(
+            &crate::synth::ModelSpec { input: 3, hidden: 4, layers: 1, output: Some(2), gain: 1.0 },
+            7,
+        );
         let mean = [1.0f32, -2.0, 0.5];
         let std = [2.0f32, 0.5, 3.0];
         let mut folded = base.clone();
@@ -167,7 +164,10 @@ mod tests {
 
     #[test]
     fn non_finite_weights_are_named() {
-        let mut m = crate::synth::random_model(&crate::synth::ModelSpec { input: 2, hidden: 2, layers: 2, output: None, gain: 1.0 }, 1);
+        let mut m = crate::synth::random_model(
+            &crate::synth::ModelSpec { input: 2, hidden: 2, layers: 2, output: None, gain: 1.0 },
+            1,
+        );
         m.layers[1].w_h[3] = f32::NAN;
         let e = m.check_finite().unwrap_err().to_string();
         assert!(e.contains("layers.1.w_h[3]"), "{e}");

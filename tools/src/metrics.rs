@@ -17,6 +17,15 @@ pub struct ErrorStats {
 }
 
 /// Running accumulator for [`ErrorStats`].
+///
+/// ```
+/// use lapwing_tools::metrics::ErrorAcc;
+/// let mut acc = ErrorAcc::default();
+/// acc.add_all(&[1.0, -1.0], &[0.9, -1.1]);
+/// let s = acc.stats();
+/// // signal 2, noise 0.02: 10 log10(100) = 20 dB.
+/// assert!((s.sqnr_db - 20.0).abs() < 1e-4);
+/// ```
 #[derive(Clone, Copy, Debug, Default)]
 pub struct ErrorAcc {
     sig: f64,
@@ -51,7 +60,15 @@ impl ErrorAcc {
         let n = self.count.max(1) as f64;
         let sqnr_db = if self.noise == 0.0 { f64::INFINITY } else { 10.0 * (self.sig / self.noise).log10() };
         let denom = (self.sig * self.test_sq).sqrt();
-        let cosine = if denom == 0.0 { if self.noise == 0.0 { 1.0 } else { 0.0 } } else { self.cross / denom };
+        let cosine = if denom == 0.0 {
+            if self.noise == 0.0 {
+                1.0
+            } else {
+                0.0
+            }
+        } else {
+            self.cross / denom
+        };
         ErrorStats { max_abs: self.max_abs, rmse: (self.noise / n).sqrt(), sqnr_db, cosine, count: self.count }
     }
 }
@@ -77,17 +94,19 @@ mod tests {
     fn sine_quantization_noise_formula() {
         // Common practice (any DSP textbook): a full-scale sine quantized
         // uniformly to N bits has SQNR = 6.02 N + 1.76 dB.
+        // The sine peaks at the largest code, 2^(N-1) - 1 steps (not clipped),
+        // which lowers the formula by 20 log10((2^(N-1) - 1) / 2^(N-1)) dB.
         for bits in [8u32, 12, 16] {
-            let levels = (1u64 << (bits - 1)) as f64;
+            let peak = ((1u64 << (bits - 1)) - 1) as f64;
             let mut a = ErrorAcc::default();
             for t in 0..200_000 {
                 let x = (t as f64 * 0.012_345_678).sin();
-                let q = (x * levels).round().clamp(-levels, levels - 1.0) / levels;
+                let q = (x * peak).round() / peak;
                 a.add(x, q);
             }
-            let expected = 6.02 * bits as f64 + 1.76;
+            let expected = 6.02 * bits as f64 + 1.76 + 20.0 * (peak / (peak + 1.0)).log10();
             let got = a.stats().sqnr_db;
-            assert!((got - expected).abs() < 0.5, "{bits} bits: {got} dB vs {expected} dB");
+            assert!((got - expected).abs() < 0.2, "{bits} bits: {got} dB vs {expected} dB");
         }
     }
 }

@@ -114,7 +114,9 @@ impl QuantModelData {
             })
             .collect::<Result<Vec<_>>>()?;
         let head = match &self.head {
-            Some(h) => Some(QHead::new(h.input, h.output, &h.w, &h.bias, &h.rq).map_err(|e| anyhow::anyhow!("head: {e}"))?),
+            Some(h) => {
+                Some(QHead::new(h.input, h.output, &h.w, &h.bias, &h.rq).map_err(|e| anyhow::anyhow!("head: {e}"))?)
+            }
             None => None,
         };
         QModel::new(&layers, head, self.cell, self.table).map_err(|e| anyhow::anyhow!("model: {e}"))

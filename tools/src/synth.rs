@@ -53,7 +53,7 @@ pub fn random_model(spec: &ModelSpec, seed: u64) -> FloatModelData {
 pub fn random_walk(features: usize, steps: usize, seed: u64) -> Vec<Vec<f32>> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut level = vec![0.0f32; features];
-    let phase: Vec<f32> = (0..features).map(|_| rng.random_range(0.0..6.28)).collect();
+    let phase: Vec<f32> = (0..features).map(|_| rng.random_range(0.0..std::f32::consts::TAU)).collect();
     (0..steps)
         .map(|t| {
             level
