@@ -33,7 +33,7 @@
 //! # Ok::<(), lapwing::Error>(())
 //! ```
 
-use crate::{Error, Probe, MAX_LAYERS};
+use crate::{stack_layers, Error, Probe, MAX_LAYERS};
 use heapless::Vec as HVec;
 
 /// One LSTM layer's float weights (borrowed).
@@ -128,21 +128,7 @@ impl<'a> FloatModel<'a> {
     /// layer's input is not the previous layer's hidden size, or the head's
     /// input is not the last hidden size.
     pub fn new(layers: &[FloatLayer<'a>], head: Option<FloatHead<'a>>) -> Result<Self, Error> {
-        if layers.is_empty() || layers.len() > MAX_LAYERS {
-            return Err(Error::LayerCount { got: layers.len() });
-        }
-        let mut v = HVec::new();
-        let mut prev: Option<usize> = None;
-        for l in layers {
-            if let Some(p) = prev {
-                check_len("layer input (previous hidden)", l.input, p)?;
-            }
-            prev = Some(l.hidden);
-            v.push(*l).map_err(|_| Error::LayerCount { got: layers.len() })?;
-        }
-        if let (Some(h), Some(p)) = (&head, prev) {
-            check_len("head input (last hidden)", h.input, p)?;
-        }
+        let v = stack_layers(layers, |l| (l.input, l.hidden), head.as_ref().map(|h| h.input))?;
         Ok(FloatModel { layers: v, head })
     }
 

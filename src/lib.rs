@@ -28,7 +28,7 @@
 //! assert_eq!(out, [0]);
 //! # Ok(()) }
 //! ```
-#![cfg_attr(not(test), no_std)]
+#![no_std]
 #![deny(missing_docs)]
 #![deny(unsafe_code)]
 #![cfg_attr(
@@ -43,6 +43,9 @@
     )
 )]
 
+#[cfg(test)]
+extern crate std;
+
 pub mod activation;
 pub mod fixed_point;
 pub mod float;
@@ -50,6 +53,34 @@ pub mod quant;
 
 /// Most stacked LSTM layers a model may have.
 pub const MAX_LAYERS: usize = 4;
+
+/// Stacks layers given as `(input, hidden)` by `dims` into a fixed-capacity
+/// list, checking that each layer's input is the previous hidden size and
+/// that the head (if any) reads the last hidden size. Shared by the float
+/// and integer models.
+pub(crate) fn stack_layers<L: Copy>(
+    layers: &[L],
+    dims: impl Fn(&L) -> (usize, usize),
+    head_input: Option<usize>,
+) -> Result<heapless::Vec<L, MAX_LAYERS>, Error> {
+    if layers.is_empty() || layers.len() > MAX_LAYERS {
+        return Err(Error::LayerCount { got: layers.len() });
+    }
+    let mut v = heapless::Vec::new();
+    let mut prev: Option<usize> = None;
+    for l in layers {
+        let (input, hidden) = dims(l);
+        if let Some(p) = prev {
+            float::check_len("layer input (previous hidden)", input, p)?;
+        }
+        prev = Some(hidden);
+        v.push(*l).map_err(|_| Error::LayerCount { got: layers.len() })?;
+    }
+    if let (Some(h), Some(p)) = (head_input, prev) {
+        float::check_len("head input (last hidden)", h, p)?;
+    }
+    Ok(v)
+}
 
 /// The four LSTM gates, in Lapwing's row order.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]

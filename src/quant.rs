@@ -38,7 +38,7 @@
 use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
 use crate::fixed_point::{mul_q31, round_shr, sat_i16, shift_signed, Requant};
 use crate::float::check_len;
-use crate::{Error, Probe, MAX_LAYERS};
+use crate::{stack_layers, Error, Probe, MAX_LAYERS};
 use heapless::Vec as HVec;
 
 /// Width of the stored cell state.
@@ -242,24 +242,10 @@ impl<'a> QModel<'a> {
         cell: CellWidth,
         table: TableKind,
     ) -> Result<Self, Error> {
-        if layers.is_empty() || layers.len() > MAX_LAYERS {
-            return Err(Error::LayerCount { got: layers.len() });
+        if let Some(l) = layers.iter().find(|l| l.cell_frac > cell.max_frac()) {
+            return Err(Error::Format { what: "cell_frac", value: l.cell_frac as i32 });
         }
-        let mut v = HVec::new();
-        let mut prev: Option<usize> = None;
-        for l in layers {
-            if let Some(p) = prev {
-                check_len("layer input (previous hidden)", l.input, p)?;
-            }
-            if l.cell_frac > cell.max_frac() {
-                return Err(Error::Format { what: "cell_frac", value: l.cell_frac as i32 });
-            }
-            prev = Some(l.hidden);
-            v.push(*l).map_err(|_| Error::LayerCount { got: layers.len() })?;
-        }
-        if let (Some(h), Some(p)) = (&head, prev) {
-            check_len("head input (last hidden)", h.input, p)?;
-        }
+        let v = stack_layers(layers, |l| (l.input, l.hidden), head.as_ref().map(|h| h.input))?;
         Ok(QModel { layers: v, head, cell, table: table.table(), table_kind: table })
     }
 
