@@ -1,8 +1,11 @@
 //! Fixed-point arithmetic shared by every integer path in Lapwing.
 //!
-//! All rounding here is **round half away from zero**, the one rule used
-//! everywhere in the crate, so that the host and the device produce the same
-//! integers bit for bit. Requantization follows the integer-arithmetic-only
+//! Every rounding step here is **round half away from zero**, the one rule
+//! used everywhere in the crate, so that the host and the device produce the
+//! same integers bit for bit. Composite operations (a high multiply followed
+//! by a right shift) round twice and so stay within 1 LSB of the exact
+//! result rather than 0.5; they are still deterministic and identical on
+//! every target. Requantization follows the integer-arithmetic-only
 //! scheme of Jacob et al. 2018 (arXiv:1712.05877, section 2.2): a real scale
 //! `M` is written as `M0 * 2^-n` with `M0` in `[0.5, 1)` held as a Q31 integer,
 //! and applied with a saturating rounding doubling high multiply followed by a
@@ -126,9 +129,10 @@ pub const fn saturates_i16(x: i32) -> bool {
 /// A real scale factor as a Q31 multiplier and a power-of-two shift.
 ///
 /// Represents `mult * 2^-31 * 2^-shift`. A positive `shift` is a rounding
-/// right shift after the multiply; a negative `shift` is a saturating left
-/// shift of the input before the multiply (so no precision is lost on scales
-/// above one). `mult` is in `[2^30, 2^31)` for non-zero scales, 0 for a zero
+/// right shift after the rounding high multiply (two roundings, within 1
+/// LSB); a negative `shift` (scales of one and above) divides the exact
+/// 64-bit product `acc * mult` by `2^(31 + shift)` with one rounding, then
+/// saturates. `mult` is in `[2^30, 2^31)` for non-zero scales, 0 for a zero
 /// scale.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
 pub struct Requant {
@@ -144,7 +148,7 @@ pub struct Requant {
 pub enum ScaleError {
     /// The scale is negative, NaN or infinite.
     NotFinitePositive,
-    /// The scale is below `2^-62` or at least `2^31`: outside what a Q31
+    /// The scale is below `2^-63` or at least `2^31`: outside what a Q31
     /// multiplier with a shift in `[-31, 62]` represents.
     OutOfRange,
 }
@@ -153,7 +157,7 @@ impl core::fmt::Display for ScaleError {
     fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
         match self {
             ScaleError::NotFinitePositive => f.write_str("scale is negative, NaN or infinite"),
-            ScaleError::OutOfRange => f.write_str("scale is outside [2^-62, 2^31)"),
+            ScaleError::OutOfRange => f.write_str("scale is outside [2^-63, 2^31)"),
         }
     }
 }
@@ -172,7 +176,7 @@ impl Requant {
     ///
     /// # Errors
     /// [`ScaleError::NotFinitePositive`] for negative, NaN or infinite
-    /// scales; [`ScaleError::OutOfRange`] outside `[2^-62, 2^31)`.
+    /// scales; [`ScaleError::OutOfRange`] outside `[2^-63, 2^31)`.
     pub fn from_real(scale: f64) -> Result<Requant, ScaleError> {
         if !(scale.is_finite() && scale >= 0.0) {
             return Err(ScaleError::NotFinitePositive);

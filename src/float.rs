@@ -58,9 +58,9 @@ impl<'a> FloatLayer<'a> {
         if input == 0 || hidden == 0 {
             return Err(Error::Shape { what: "layer dimension", expected: 1, got: 0 });
         }
-        let rows = 4 * hidden;
-        check_len("w_x", w_x.len(), rows * input)?;
-        check_len("w_h", w_h.len(), rows * hidden)?;
+        let rows = dim_mul("hidden units", 4, hidden)?;
+        check_len("w_x", w_x.len(), dim_mul("w_x", rows, input)?)?;
+        check_len("w_h", w_h.len(), dim_mul("w_h", rows, hidden)?)?;
         check_len("bias", b.len(), rows)?;
         Ok(FloatLayer { input, hidden, w_x, w_h, b })
     }
@@ -94,7 +94,7 @@ impl<'a> FloatHead<'a> {
         if input == 0 || output == 0 {
             return Err(Error::Shape { what: "head dimension", expected: 1, got: 0 });
         }
-        check_len("head weight", w.len(), input * output)?;
+        check_len("head weight", w.len(), dim_mul("head weight", input, output)?)?;
         check_len("head bias", b.len(), output)?;
         Ok(FloatHead { input, output, w, b })
     }
@@ -103,6 +103,11 @@ impl<'a> FloatHead<'a> {
     pub fn output(&self) -> usize {
         self.output
     }
+}
+
+/// `a * b`, or [`Error::Shape`] naming `what` when the product overflows.
+pub(crate) fn dim_mul(what: &'static str, a: usize, b: usize) -> Result<usize, Error> {
+    a.checked_mul(b).ok_or(Error::Shape { what, expected: usize::MAX, got: a })
 }
 
 pub(crate) fn check_len(what: &'static str, got: usize, expected: usize) -> Result<(), Error> {

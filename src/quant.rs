@@ -26,7 +26,10 @@
 //! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h) + b`
 //!   with the bias in output units (so a large output offset cannot
 //!   overflow the accumulator), saturated to `int16` with a per-output scale.
-//! - **Rounding**: half away from zero everywhere ([`crate::fixed_point`]).
+//! - **Rounding**: every rounding step is half away from zero
+//!   ([`crate::fixed_point`]); requantization, `i*g` and the hidden update
+//!   round twice (multiply-high, then shift), so they are within 1 LSB of
+//!   the exact value, identically on every target.
 //!
 //! # State
 //! Caller-owned `i16` words, [`QModel::state_words`] of them: per layer
@@ -37,7 +40,7 @@
 
 use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
 use crate::fixed_point::{mul_q31, round_shr, sat_i16, shift_signed, Requant};
-use crate::float::check_len;
+use crate::float::{check_len, dim_mul};
 use crate::{stack_layers, Error, Probe, MAX_LAYERS};
 use heapless::Vec as HVec;
 
@@ -124,12 +127,12 @@ impl<'a> QLayer<'a> {
         if input == 0 || hidden == 0 {
             return Err(Error::Shape { what: "layer dimension", expected: 1, got: 0 });
         }
-        let rows = 4 * hidden;
-        check_len("w_x", w_x.len(), rows * input)?;
-        check_len("w_h", w_h.len(), rows * hidden)?;
+        let rows = dim_mul("hidden units", 4, hidden)?;
+        check_len("w_x", w_x.len(), dim_mul("w_x", rows, input)?)?;
+        check_len("w_h", w_h.len(), dim_mul("w_h", rows, hidden)?)?;
         check_len("bias", bias.len(), rows)?;
-        check_len("rq_x", rq_x.len(), 2 * rows)?;
-        check_len("rq_h", rq_h.len(), 2 * rows)?;
+        check_len("rq_x", rq_x.len(), dim_mul("rq_x", 2, rows)?)?;
+        check_len("rq_h", rq_h.len(), dim_mul("rq_h", 2, rows)?)?;
         check_requant(rq_x)?;
         check_requant(rq_h)?;
         check_bound("input weights", 0, w_x, input)?;
@@ -204,9 +207,9 @@ impl<'a> QHead<'a> {
         if input == 0 || output == 0 {
             return Err(Error::Shape { what: "head dimension", expected: 1, got: 0 });
         }
-        check_len("head weight", w.len(), input * output)?;
+        check_len("head weight", w.len(), dim_mul("head weight", input, output)?)?;
         check_len("head bias", bias.len(), output)?;
-        check_len("head rq", rq.len(), 2 * output)?;
+        check_len("head rq", rq.len(), dim_mul("head rq", 2, output)?)?;
         check_requant(rq)?;
         check_bound("head weights", 0, w, input)?;
         Ok(QHead { input, output, w, bias, rq })
@@ -553,6 +556,17 @@ mod tests {
             Error::AccumulatorBound { what: "input weights", layer: 0, row: 0 }
         );
         assert!(QLayer::new(516, 1, &wx[..4 * 516], &wh, &b, &rq, &rq, 13).is_ok());
+    }
+
+    #[test]
+    fn huge_dimensions_are_errors_not_overflows() {
+        // Found in review: 4 * hidden wrapped to 0 and was accepted.
+        assert!(matches!(QLayer::new(1, usize::MAX / 4 + 1, &[], &[], &[], &[], &[], 0), Err(Error::Shape { .. })));
+        assert!(matches!(QHead::new(usize::MAX / 2 + 1, 2, &[], &[], &[0; 4]), Err(Error::Shape { .. })));
+        assert!(matches!(
+            crate::float::FloatLayer::new(usize::MAX / 4 + 1, 1, &[], &[0.0; 4], &[0.0; 4]),
+            Err(Error::Shape { .. })
+        ));
     }
 
     #[test]

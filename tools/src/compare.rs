@@ -75,7 +75,12 @@ pub fn compare(float: &FloatModelData, quant: &QuantModelData, inputs: &[Vec<f32
     }
     let fm = float.view()?;
     let qm = quant.view()?;
-    if fm.layers().len() != qm.layers().len() || fm.input_len() != qm.input_len() || fm.output_len() != qm.output_len()
+    let same_layers =
+        fm.layers().iter().zip(qm.layers()).all(|(f, q)| f.input() == q.input() && f.hidden() == q.hidden());
+    if fm.layers().len() != qm.layers().len()
+        || !same_layers
+        || fm.input_len() != qm.input_len()
+        || fm.output_len() != qm.output_len()
     {
         bail!("the float model and the quantized model have different shapes");
     }

@@ -62,7 +62,7 @@ enum CellArg {
 enum TableArg {
     /// 1,072-byte activation table (within 1.5 LSB).
     Standard,
-    /// 304-byte activation table for tight flash (within 6.5 LSB).
+    /// 304-byte activation table for tight flash (within 7 LSB).
     Compact,
 }
 

@@ -174,6 +174,25 @@ fn check_bound(q: &[i8], cols: usize, what: &str) -> Result<()> {
     Ok(())
 }
 
+/// Refuses ranges no format can be chosen from (NaN, infinite, negative).
+fn check_ranges(r: &Ranges) -> Result<()> {
+    let bad = |v: f32| !(v.is_finite() && v >= 0.0);
+    if let Some(i) = r.input_absmax.iter().position(|v| bad(*v)) {
+        bail!("calibration range of input feature {i} is {} (must be finite and >= 0)", r.input_absmax[i]);
+    }
+    if let Some(i) = r.output_absmax.iter().position(|v| bad(*v)) {
+        bail!("calibration range of output {i} is {} (must be finite and >= 0)", r.output_absmax[i]);
+    }
+    for (k, l) in r.layers.iter().enumerate() {
+        if bad(l.cell_absmax) {
+            bail!("calibration range of the layer {k} cell is {} (must be finite and >= 0)", l.cell_absmax);
+        }
+    }
+    Ok(())
+}
+
+/// Real value of one int16 LSB for a calibrated |x| maximum. A quantity that
+/// was exactly 0 over the whole calibration set gets the range +-1.
 fn scale_for(absmax: f32, headroom: f32) -> f64 {
     let m = absmax as f64 * headroom as f64;
     if m > 0.0 && m.is_finite() {
@@ -196,7 +215,9 @@ pub fn cell_frac16(absmax: f32, headroom: f32) -> u8 {
 /// Non-finite weights, ranges that do not match the model, a scale no Q31
 /// multiplier can hold, or a row whose accumulator could overflow.
 pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) -> Result<QuantModelData> {
+    model.view().context("the float model is inconsistent")?;
     model.check_finite()?;
+    check_ranges(ranges)?;
     if ranges.layers.len() != model.layers.len() || ranges.input_absmax.len() != model.input_len() {
         bail!(
             "calibration ranges are for {} layers and {} inputs, the model has {} and {}",
@@ -288,6 +309,30 @@ mod tests {
         };
         let e = quantize(&m, &ranges, &QuantOptions::default()).unwrap_err().to_string();
         assert!(e.contains("layer 0 input weights, row 0") && e.contains("exceeds"), "{e}");
+    }
+
+    #[test]
+    fn inconsistent_models_and_ranges_are_errors() {
+        // Found in review: a zero hidden size panicked in chunks_exact.
+        let spec = ModelSpec { input: 1, hidden: 1, layers: 1, output: None, gain: 1.0 };
+        let mut m = random_model(&spec, 3);
+        m.layers[0].hidden = 0;
+        let ranges =
+            Ranges { input_absmax: vec![1.0], layers: vec![Default::default()], output_absmax: vec![], steps: 1 };
+        assert!(quantize(&m, &ranges, &QuantOptions::default()).is_err());
+        let m = random_model(&spec, 3);
+        let mut ranges = Ranges {
+            input_absmax: vec![f32::NAN],
+            layers: vec![Default::default()],
+            output_absmax: vec![1.0],
+            steps: 1,
+        };
+        let e = quantize(&m, &ranges, &QuantOptions::default()).unwrap_err().to_string();
+        assert!(e.contains("input feature 0"), "{e}");
+        ranges.input_absmax[0] = 1.0;
+        ranges.layers[0].cell_absmax = f32::INFINITY;
+        let e = quantize(&m, &ranges, &QuantOptions::default()).unwrap_err().to_string();
+        assert!(e.contains("layer 0 cell"), "{e}");
     }
 
     #[test]
