@@ -175,10 +175,16 @@ fn check_requant(rq: &[i32]) -> Result<(), Error> {
     Ok(())
 }
 
+/// Worst-case |accumulator| of one weight row against any `int16` input:
+/// `sum |w| * 32768`. A row is accepted only when this is at most `i32::MAX`.
+/// The host quantizer uses the same function for its readable refusal.
+pub fn worst_case_accumulator(row: &[i8]) -> i64 {
+    row.iter().map(|v| (*v as i64).abs()).sum::<i64>() * ACT_MAX
+}
+
 fn check_bound(what: &'static str, layer: usize, w: &[i8], cols: usize) -> Result<(), Error> {
     for (row, r) in w.chunks_exact(cols).enumerate() {
-        let sum: i64 = r.iter().map(|v| (*v as i64).abs()).sum();
-        if sum * ACT_MAX > i32::MAX as i64 {
+        if worst_case_accumulator(r) > i32::MAX as i64 {
             return Err(Error::AccumulatorBound { what, layer, row });
         }
     }
@@ -218,6 +224,11 @@ impl<'a> QHead<'a> {
     /// Output values Y.
     pub fn output(&self) -> usize {
         self.output
+    }
+
+    /// Weight, bias and requantization bytes of the head as stored.
+    pub fn weight_bytes(&self) -> usize {
+        self.w.len() + 4 * (self.bias.len() + self.rq.len())
     }
 }
 
@@ -498,14 +509,13 @@ mod tests {
 
     static STATIC_STATE: StateBuf<64> = StateBuf::new();
 
-    fn tiny(cell: CellWidth) -> ([i8; 4], [i8; 4], [i32; 4], [i32; 8]) {
+    fn tiny() -> ([i8; 4], [i8; 4], [i32; 4], [i32; 8]) {
         let rq = Requant::from_real(1.0).unwrap();
         let pair = [rq.mult, rq.shift];
         let mut rqs = [0i32; 8];
         for ch in rqs.chunks_exact_mut(2) {
             ch.copy_from_slice(&pair);
         }
-        let _ = cell;
         ([10, 10, 10, 10], [0; 4], [0; 4], rqs)
     }
 
@@ -526,7 +536,7 @@ mod tests {
 
     #[test]
     fn wrong_sizes_are_errors_not_panics() {
-        let (wx, wh, b, rq) = tiny(CellWidth::C16);
+        let (wx, wh, b, rq) = tiny();
         let l = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap();
         let m = QModel::new(&[l], None, CellWidth::C16, TableKind::Standard).unwrap();
         assert_eq!(m.state_words(), 3);
@@ -571,7 +581,7 @@ mod tests {
 
     #[test]
     fn bad_requant_is_refused() {
-        let (wx, wh, b, mut rq) = tiny(CellWidth::C16);
+        let (wx, wh, b, mut rq) = tiny();
         rq[1] = 99;
         assert_eq!(
             QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap_err(),

@@ -32,7 +32,7 @@ pub fn run(opts: &QuantOptions, calib_steps: usize, steps: usize) -> Result<(Com
     let view = q.view()?;
     let footprint = Footprint {
         weight_bytes: view.layers().iter().map(|l| l.weight_bytes()).sum::<usize>()
-            + q.head.as_ref().map_or(0, |h| h.w.len() + 4 * (h.bias.len() + h.rq.len())),
+            + view.head().map_or(0, |h| h.weight_bytes()),
         table_bytes: opts.table.table().flash_bytes(),
         state_bytes: 2 * view.state_words(),
         macs_per_step: view.macs_per_step(),

@@ -24,7 +24,7 @@ use crate::float_model::FloatModelData;
 use anyhow::{bail, Context, Result};
 use lapwing::activation::{TableKind, PRE_FRAC};
 use lapwing::fixed_point::{to_fixed_i32, Requant};
-use lapwing::quant::{CellWidth, QHead, QLayer, QModel};
+use lapwing::quant::{worst_case_accumulator, CellWidth, QHead, QLayer, QModel};
 
 /// Options of the quantizer.
 #[derive(Clone, Copy, Debug)]
@@ -161,13 +161,11 @@ fn quantize_rows(w: &[f32], cols: usize, col_scale: &[f64]) -> (Vec<i8>, Vec<f64
 
 fn check_bound(q: &[i8], cols: usize, what: &str) -> Result<()> {
     for (r, row) in q.chunks_exact(cols).enumerate() {
-        let sum: i64 = row.iter().map(|v| (*v as i64).abs()).sum();
-        if sum * 32_768 > i32::MAX as i64 {
+        let worst = worst_case_accumulator(row);
+        if worst > i32::MAX as i64 {
             bail!(
-                "{what}, row {r}: worst-case accumulator {} exceeds 2^31 - 1 ({} columns); \
-                 the w8a16 scheme supports rows up to 516 columns at full scale",
-                sum * 32_768,
-                cols
+                "{what}, row {r}: worst-case accumulator {worst} exceeds 2^31 - 1 ({cols} columns); \
+                 the w8a16 scheme supports rows up to 516 columns at full scale"
             );
         }
     }
