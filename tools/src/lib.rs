@@ -19,8 +19,10 @@
 
 pub mod calibrate;
 pub mod compare;
+pub mod data;
 pub mod example;
 pub mod float_model;
+pub mod import;
 pub mod metrics;
 pub mod quantize;
 pub mod synth;

@@ -1,0 +1,1 @@
+//! Data input (being written).

@@ -1,0 +1,1 @@
+//! Float model import (being written).
