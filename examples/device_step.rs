@@ -6,20 +6,24 @@
 //! integrates its input); real models come from the `lapwing` host tool.
 
 use lapwing::activation::{TableKind, PRE_FRAC};
-use lapwing::quant::{CellWidth, QLayer, QModel, StateBuf};
+use lapwing::quant::{CellWidth, QLayer, QModel, RowScales, StateBuf};
 
 // One input, one unit. Rows: i, f, g, o. Weights int8 per row.
 static W_X: [i8; 4] = [0, 0, 127, 0];
 static W_H: [i8; 4] = [0; 4];
 // Biases in pre-activation units (2^-19): i = +4, f = +3, g = 0, o = +4.
 static BIAS: [i32; 4] = [4 << PRE_FRAC, 3 << PRE_FRAC, 0, 4 << PRE_FRAC];
-// (multiplier, shift) per row: acc_x * 2^-7 (so 127 * x reads as ~x) in
+// Multiplier and shift per row: acc_x * 2^-7 (so 127 * x reads as ~x) in
 // pre-activation units, i.e. the real scale 2^(19 - 7 - 15) for Q0.15 inputs.
-static RQ_X: [i32; 8] = [1 << 30, 2, 1 << 30, 2, 1 << 30, 2, 1 << 30, 2];
-static RQ_H: [i32; 8] = [0; 8];
+static RQ_X_MULT: [i32; 4] = [1 << 30; 4];
+static RQ_X_SHIFT: [i8; 4] = [2; 4];
+static RQ_H_MULT: [i32; 4] = [0; 4];
+static RQ_H_SHIFT: [i8; 4] = [0; 4];
 
 fn main() -> Result<(), lapwing::Error> {
-    let layer = QLayer::new(1, 1, &W_X, &W_H, &BIAS, &RQ_X, &RQ_H, 13)?;
+    let rq_x = RowScales::new(&RQ_X_MULT, &RQ_X_SHIFT)?;
+    let rq_h = RowScales::new(&RQ_H_MULT, &RQ_H_SHIFT)?;
+    let layer = QLayer::new(1, 1, &W_X, &W_H, &BIAS, rq_x, rq_h, 13)?;
     let model = QModel::new(&[layer], None, CellWidth::C16, TableKind::Standard)?;
     let mut state: StateBuf<8> = StateBuf::new();
     let words = model.state_words();

@@ -14,13 +14,13 @@
 //! - [`quant`]: the integer-only LSTM step (scheme `w8a16`, cell `c16`/`c32`).
 //!
 //! ```
-//! use lapwing::quant::{CellWidth, QLayer, QModel};
+//! use lapwing::quant::{CellWidth, QLayer, QModel, RowScales};
 //! use lapwing::activation::TableKind;
 //! # fn main() -> Result<(), lapwing::Error> {
 //! // A one-unit layer with all-zero weights and biases: h stays 0.
 //! let (w_x, w_h, bias) = ([0i8; 4], [0i8; 4], [0i32; 4]);
-//! let rq = [1 << 30, 0, 1 << 30, 0, 1 << 30, 0, 1 << 30, 0];
-//! let layer = QLayer::new(1, 1, &w_x, &w_h, &bias, &rq, &rq, 13)?;
+//! let rq = RowScales::new(&[1 << 30; 4], &[0; 4])?;
+//! let layer = QLayer::new(1, 1, &w_x, &w_h, &bias, rq, rq, 13)?;
 //! let model = QModel::new(&[layer], None, CellWidth::C16, TableKind::Standard)?;
 //! let mut state = [0i16; 3];
 //! let mut out = [0i16; 1];

@@ -92,9 +92,58 @@ pub struct QLayer<'a> {
     w_x: &'a [i8],
     w_h: &'a [i8],
     bias: &'a [i32],
-    rq_x: &'a [i32],
-    rq_h: &'a [i32],
+    rq_x: RowScales<'a>,
+    rq_h: RowScales<'a>,
     cell_frac: u8,
+}
+
+/// Per-row requantization: a Q31 multiplier and a shift per row (see
+/// [`Requant`]), stored as two arrays so the shifts take one byte each.
+#[derive(Clone, Copy, Debug)]
+pub struct RowScales<'a> {
+    mult: &'a [i32],
+    shift: &'a [i8],
+}
+
+impl<'a> RowScales<'a> {
+    /// Multipliers in `[0, 2^31)` and shifts in `[-31, 62]`, one each per row.
+    ///
+    /// # Errors
+    /// [`Error::Shape`] when the lengths differ; [`Error::Format`] for a
+    /// multiplier or shift out of range.
+    pub fn new(mult: &'a [i32], shift: &'a [i8]) -> Result<Self, Error> {
+        check_len("requant shifts", shift.len(), mult.len())?;
+        if let Some(m) = mult.iter().find(|m| **m < 0) {
+            return Err(Error::Format { what: "requant multiplier", value: *m });
+        }
+        if let Some(s) = shift.iter().find(|s| !(-31..=62).contains(*s)) {
+            return Err(Error::Format { what: "requant shift", value: *s as i32 });
+        }
+        Ok(RowScales { mult, shift })
+    }
+
+    /// Rows covered.
+    pub fn len(&self) -> usize {
+        self.mult.len()
+    }
+
+    /// True when there are no rows.
+    pub fn is_empty(&self) -> bool {
+        self.mult.is_empty()
+    }
+
+    /// Bytes as stored (4 per multiplier, 1 per shift).
+    pub fn bytes(&self) -> usize {
+        4 * self.mult.len() + self.shift.len()
+    }
+
+    #[inline]
+    fn apply(&self, row: usize, acc: i32) -> i32 {
+        match (self.mult.get(row), self.shift.get(row)) {
+            (Some(m), Some(s)) => Requant { mult: *m, shift: *s as i32 }.apply(acc),
+            _ => 0,
+        }
+    }
 }
 
 impl<'a> QLayer<'a> {
@@ -103,14 +152,13 @@ impl<'a> QLayer<'a> {
     /// - `w_x`: `[4H, X]` int8, `w_h`: `[4H, H]` int8, row-major, gates
     ///   `i, f, g, o`;
     /// - `bias`: `[4H]` in pre-activation units (LSB `2^-19`);
-    /// - `rq_x`, `rq_h`: `[4H]` (multiplier, shift) pairs, interleaved
-    ///   (`8H` values), taking `acc_x`/`acc_h` to pre-activation units;
+    /// - `rq_x`, `rq_h`: `[4H]` row scales taking `acc_x`/`acc_h` to
+    ///   pre-activation units;
     /// - `cell_frac`: fractional bits of the cell.
     ///
     /// # Errors
     /// [`Error::Shape`] for wrong lengths or a zero dimension;
-    /// [`Error::Format`] for a multiplier outside `[0, 2^31)` or a shift
-    /// outside `[-31, 62]`; [`Error::AccumulatorBound`] when
+    /// [`Error::AccumulatorBound`] when
     /// `sum |w| * 32768` of a row exceeds `i32::MAX`. The cell format is
     /// checked by [`QModel::new`], which knows the cell width.
     #[allow(clippy::too_many_arguments)]
@@ -120,8 +168,8 @@ impl<'a> QLayer<'a> {
         w_x: &'a [i8],
         w_h: &'a [i8],
         bias: &'a [i32],
-        rq_x: &'a [i32],
-        rq_h: &'a [i32],
+        rq_x: RowScales<'a>,
+        rq_h: RowScales<'a>,
         cell_frac: u8,
     ) -> Result<Self, Error> {
         if input == 0 || hidden == 0 {
@@ -131,10 +179,8 @@ impl<'a> QLayer<'a> {
         check_len("w_x", w_x.len(), dim_mul("w_x", rows, input)?)?;
         check_len("w_h", w_h.len(), dim_mul("w_h", rows, hidden)?)?;
         check_len("bias", bias.len(), rows)?;
-        check_len("rq_x", rq_x.len(), dim_mul("rq_x", 2, rows)?)?;
-        check_len("rq_h", rq_h.len(), dim_mul("rq_h", 2, rows)?)?;
-        check_requant(rq_x)?;
-        check_requant(rq_h)?;
+        check_len("rq_x", rq_x.len(), rows)?;
+        check_len("rq_h", rq_h.len(), rows)?;
         check_bound("input weights", 0, w_x, input)?;
         check_bound("recurrent weights", 0, w_h, hidden)?;
         Ok(QLayer { input, hidden, w_x, w_h, bias, rq_x, rq_h, cell_frac })
@@ -157,22 +203,8 @@ impl<'a> QLayer<'a> {
 
     /// Weight and bias bytes of this layer as stored.
     pub fn weight_bytes(&self) -> usize {
-        self.w_x.len() + self.w_h.len() + 4 * (self.bias.len() + self.rq_x.len() + self.rq_h.len())
+        self.w_x.len() + self.w_h.len() + 4 * self.bias.len() + self.rq_x.bytes() + self.rq_h.bytes()
     }
-}
-
-fn check_requant(rq: &[i32]) -> Result<(), Error> {
-    for pair in rq.chunks_exact(2) {
-        if let [m, s] = pair {
-            if *m < 0 {
-                return Err(Error::Format { what: "requant multiplier", value: *m });
-            }
-            if !(-31..=62).contains(s) {
-                return Err(Error::Format { what: "requant shift", value: *s });
-            }
-        }
-    }
-    Ok(())
 }
 
 /// Worst-case |accumulator| of one weight row against any `int16` input:
@@ -198,25 +230,23 @@ pub struct QHead<'a> {
     output: usize,
     w: &'a [i8],
     bias: &'a [i32],
-    rq: &'a [i32],
+    rq: RowScales<'a>,
 }
 
 impl<'a> QHead<'a> {
     /// A head from `input` hidden units to `output` values: `w` is `[Y, H]`
-    /// int8, `bias` `[Y]` in output units, `rq` `[Y]` interleaved
-    /// (multiplier, shift) pairs taking the accumulator to the output's
-    /// `int16` scale.
+    /// int8, `bias` `[Y]` in output units, `rq` `[Y]` row scales taking the
+    /// accumulator to the output's `int16` scale.
     ///
     /// # Errors
     /// As [`QLayer::new`].
-    pub fn new(input: usize, output: usize, w: &'a [i8], bias: &'a [i32], rq: &'a [i32]) -> Result<Self, Error> {
+    pub fn new(input: usize, output: usize, w: &'a [i8], bias: &'a [i32], rq: RowScales<'a>) -> Result<Self, Error> {
         if input == 0 || output == 0 {
             return Err(Error::Shape { what: "head dimension", expected: 1, got: 0 });
         }
         check_len("head weight", w.len(), dim_mul("head weight", input, output)?)?;
         check_len("head bias", bias.len(), output)?;
-        check_len("head rq", rq.len(), dim_mul("head rq", 2, output)?)?;
-        check_requant(rq)?;
+        check_len("head rq", rq.len(), output)?;
         check_bound("head weights", 0, w, input)?;
         Ok(QHead { input, output, w, bias, rq })
     }
@@ -228,7 +258,7 @@ impl<'a> QHead<'a> {
 
     /// Weight, bias and requantization bytes of the head as stored.
     pub fn weight_bytes(&self) -> usize {
-        self.w.len() + 4 * (self.bias.len() + self.rq.len())
+        self.w.len() + 4 * self.bias.len() + self.rq.bytes()
     }
 }
 
@@ -354,9 +384,9 @@ impl<'a> QModel<'a> {
         let last = prev_h.unwrap_or(x);
         match &self.head {
             Some(head) => {
-                let rows = head.w.chunks_exact(head.input).zip(head.bias).zip(head.rq.chunks_exact(2));
-                for (o, ((row, b), rq)) in out.iter_mut().zip(rows) {
-                    *o = sat_i16(requant(rq, dot(row, last)).saturating_add(*b));
+                let rows = head.w.chunks_exact(head.input).zip(head.bias).enumerate();
+                for (o, (r, (row, b))) in out.iter_mut().zip(rows) {
+                    *o = sat_i16(head.rq.apply(r, dot(row, last)).saturating_add(*b));
                 }
             }
             None => {
@@ -404,14 +434,6 @@ impl<const N: usize> StateBuf<N> {
 impl<const N: usize> Default for StateBuf<N> {
     fn default() -> Self {
         Self::new()
-    }
-}
-
-#[inline]
-fn requant(rq: &[i32], acc: i32) -> i32 {
-    match rq {
-        [mult, shift] => Requant { mult: *mult, shift: *shift }.apply(acc),
-        _ => 0,
     }
 }
 
@@ -471,10 +493,8 @@ fn layer_step<P: Probe<i32>>(
     let pre_of = |r: usize| -> i32 {
         let wx = layer.w_x.get(r * xi..(r + 1) * xi).unwrap_or(&[]);
         let wh = layer.w_h.get(r * hd..(r + 1) * hd).unwrap_or(&[]);
-        let rqx = layer.rq_x.get(2 * r..2 * r + 2).unwrap_or(&[]);
-        let rqh = layer.rq_h.get(2 * r..2 * r + 2).unwrap_or(&[]);
         let b = layer.bias.get(r).copied().unwrap_or(0);
-        requant(rqx, dot(wx, x)).saturating_add(requant(rqh, dot(wh, h))).saturating_add(b)
+        layer.rq_x.apply(r, dot(wx, x)).saturating_add(layer.rq_h.apply(r, dot(wh, h))).saturating_add(b)
     };
     for (j, hn) in scratch.iter_mut().enumerate().take(hd) {
         let pre = [pre_of(j), pre_of(hd + j), pre_of(2 * hd + j), pre_of(3 * hd + j)];
@@ -509,14 +529,14 @@ mod tests {
 
     static STATIC_STATE: StateBuf<64> = StateBuf::new();
 
-    fn tiny() -> ([i8; 4], [i8; 4], [i32; 4], [i32; 8]) {
+    const M1: [i32; 4] = [1 << 30; 4];
+    const S1: [i8; 4] = [-1; 4];
+
+    fn tiny() -> ([i8; 4], [i8; 4], [i32; 4], RowScales<'static>) {
+        // Requant::from_real(1.0) is (2^30, -1): 2^30 * acc * 2 / 2^31.
         let rq = Requant::from_real(1.0).unwrap();
-        let pair = [rq.mult, rq.shift];
-        let mut rqs = [0i32; 8];
-        for ch in rqs.chunks_exact_mut(2) {
-            ch.copy_from_slice(&pair);
-        }
-        ([10, 10, 10, 10], [0; 4], [0; 4], rqs)
+        assert_eq!((rq.mult, rq.shift), (M1[0], S1[0] as i32));
+        ([10, 10, 10, 10], [0; 4], [0; 4], RowScales::new(&M1, &S1).unwrap())
     }
 
     #[test]
@@ -537,7 +557,7 @@ mod tests {
     #[test]
     fn wrong_sizes_are_errors_not_panics() {
         let (wx, wh, b, rq) = tiny();
-        let l = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap();
+        let l = QLayer::new(1, 1, &wx, &wh, &b, rq, rq, 13).unwrap();
         let m = QModel::new(&[l], None, CellWidth::C16, TableKind::Standard).unwrap();
         assert_eq!(m.state_words(), 3);
         let mut st = [0i16; 2];
@@ -547,7 +567,7 @@ mod tests {
         assert_eq!(m.step(&mut st, &[1], &mut []), Err(Error::OutputSize { expected: 1, got: 0 }));
         assert_eq!(st, [0; 3]);
         assert!(matches!(QModel::new(&[l], None, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()), Ok(4)));
-        let bad = QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 20).unwrap();
+        let bad = QLayer::new(1, 1, &wx, &wh, &b, rq, rq, 20).unwrap();
         assert_eq!(
             QModel::new(&[bad], None, CellWidth::C16, TableKind::Standard).unwrap_err(),
             Error::Format { what: "cell_frac", value: 20 }
@@ -560,19 +580,21 @@ mod tests {
         let wx = [127i8; 4 * 600];
         let wh = [0i8; 4];
         let b = [0i32; 4];
-        let rq = [1 << 30, 0, 1 << 30, 0, 1 << 30, 0, 1 << 30, 0];
+        let rq = RowScales::new(&M1, &S1).unwrap();
         assert_eq!(
-            QLayer::new(600, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap_err(),
+            QLayer::new(600, 1, &wx, &wh, &b, rq, rq, 13).unwrap_err(),
             Error::AccumulatorBound { what: "input weights", layer: 0, row: 0 }
         );
-        assert!(QLayer::new(516, 1, &wx[..4 * 516], &wh, &b, &rq, &rq, 13).is_ok());
+        assert!(QLayer::new(516, 1, &wx[..4 * 516], &wh, &b, rq, rq, 13).is_ok());
     }
 
     #[test]
     fn huge_dimensions_are_errors_not_overflows() {
         // Found in review: 4 * hidden wrapped to 0 and was accepted.
-        assert!(matches!(QLayer::new(1, usize::MAX / 4 + 1, &[], &[], &[], &[], &[], 0), Err(Error::Shape { .. })));
-        assert!(matches!(QHead::new(usize::MAX / 2 + 1, 2, &[], &[], &[0; 4]), Err(Error::Shape { .. })));
+        let none = RowScales::new(&[], &[]).unwrap();
+        assert!(matches!(QLayer::new(1, usize::MAX / 4 + 1, &[], &[], &[], none, none, 0), Err(Error::Shape { .. })));
+        let two = RowScales::new(&M1[..2], &S1[..2]).unwrap();
+        assert!(matches!(QHead::new(usize::MAX / 2 + 1, 2, &[], &[], two), Err(Error::Shape { .. })));
         assert!(matches!(
             crate::float::FloatLayer::new(usize::MAX / 4 + 1, 1, &[], &[0.0; 4], &[0.0; 4]),
             Err(Error::Shape { .. })
@@ -581,11 +603,14 @@ mod tests {
 
     #[test]
     fn bad_requant_is_refused() {
-        let (wx, wh, b, mut rq) = tiny();
-        rq[1] = 99;
+        assert_eq!(RowScales::new(&M1, &[0, 0, 99, 0]).unwrap_err(), Error::Format { what: "requant shift", value: 99 });
         assert_eq!(
-            QLayer::new(1, 1, &wx, &wh, &b, &rq, &rq, 13).unwrap_err(),
-            Error::Format { what: "requant shift", value: 99 }
+            RowScales::new(&[0, -5, 0, 0], &S1).unwrap_err(),
+            Error::Format { what: "requant multiplier", value: -5 }
         );
+        assert!(matches!(RowScales::new(&M1, &S1[..3]), Err(Error::Shape { .. })));
+        let (wx, wh, b, _) = tiny();
+        let short = RowScales::new(&M1[..3], &S1[..3]).unwrap();
+        assert!(matches!(QLayer::new(1, 1, &wx, &wh, &b, short, short, 13), Err(Error::Shape { .. })));
     }
 }

@@ -4,12 +4,11 @@
 //! inputs give the same outputs.
 
 use lapwing::activation::TableKind;
-use lapwing::quant::{CellWidth, QHead, QLayer, QModel};
+use lapwing::quant::{CellWidth, QHead, QLayer, QModel, RowScales};
 use proptest::prelude::*;
 
-fn requant_pairs(n: usize) -> impl Strategy<Value = Vec<i32>> {
-    prop::collection::vec((0i32..=i32::MAX, -31i32..=62), n)
-        .prop_map(|v| v.into_iter().flat_map(|(m, s)| [m, s]).collect())
+fn requant_pairs(n: usize) -> impl Strategy<Value = (Vec<i32>, Vec<i8>)> {
+    prop::collection::vec((0i32..=i32::MAX, -31i8..=62), n).prop_map(|v| v.into_iter().unzip())
 }
 
 #[derive(Debug, Clone)]
@@ -19,12 +18,12 @@ struct Raw {
     w_x: Vec<i8>,
     w_h: Vec<i8>,
     bias: Vec<i32>,
-    rq_x: Vec<i32>,
-    rq_h: Vec<i32>,
+    rq_x: (Vec<i32>, Vec<i8>),
+    rq_h: (Vec<i32>, Vec<i8>),
     frac: u8,
     head_w: Vec<i8>,
     head_b: Vec<i32>,
-    head_rq: Vec<i32>,
+    head_rq: (Vec<i32>, Vec<i8>),
     cell: CellWidth,
     table: TableKind,
     inputs: Vec<Vec<i16>>,
@@ -66,8 +65,11 @@ fn raw_model() -> impl Strategy<Value = Raw> {
 }
 
 fn run(r: &Raw) -> Option<Vec<Vec<i16>>> {
-    let layer = QLayer::new(r.x, r.h, &r.w_x, &r.w_h, &r.bias, &r.rq_x, &r.rq_h, r.frac).ok()?;
-    let head = QHead::new(r.h, 2, &r.head_w, &r.head_b, &r.head_rq).ok()?;
+    fn scales(p: &(Vec<i32>, Vec<i8>)) -> Option<RowScales<'_>> {
+        RowScales::new(&p.0, &p.1).ok()
+    }
+    let layer = QLayer::new(r.x, r.h, &r.w_x, &r.w_h, &r.bias, scales(&r.rq_x)?, scales(&r.rq_h)?, r.frac).ok()?;
+    let head = QHead::new(r.h, 2, &r.head_w, &r.head_b, scales(&r.head_rq)?).ok()?;
     let model = QModel::new(&[layer], Some(head), r.cell, r.table).ok()?;
     let mut state = vec![0i16; model.state_words()];
     let mut out = [0i16; 2];

@@ -24,7 +24,7 @@ use crate::float_model::FloatModelData;
 use anyhow::{bail, Context, Result};
 use lapwing::activation::{TableKind, PRE_FRAC};
 use lapwing::fixed_point::{to_fixed_i32, Requant};
-use lapwing::quant::{worst_case_accumulator, CellWidth, QHead, QLayer, QModel};
+use lapwing::quant::{worst_case_accumulator, CellWidth, QHead, QLayer, QModel, RowScales};
 
 /// Options of the quantizer.
 #[derive(Clone, Copy, Debug)]
@@ -57,10 +57,10 @@ pub struct QuantLayerData {
     pub w_h: Vec<i8>,
     /// `[4H]` in pre-activation units.
     pub bias: Vec<i32>,
-    /// `[4H]` (multiplier, shift) pairs for `acc_x`.
-    pub rq_x: Vec<i32>,
-    /// `[4H]` (multiplier, shift) pairs for `acc_h`.
-    pub rq_h: Vec<i32>,
+    /// `[4H]` row scales for `acc_x`.
+    pub rq_x: OwnedScales,
+    /// `[4H]` row scales for `acc_h`.
+    pub rq_h: OwnedScales,
     /// Fractional bits of the cell.
     pub cell_frac: u8,
 }
@@ -76,8 +76,40 @@ pub struct QuantHeadData {
     pub w: Vec<i8>,
     /// `[Y]` in output units.
     pub bias: Vec<i32>,
-    /// `[Y]` (multiplier, shift) pairs.
-    pub rq: Vec<i32>,
+    /// `[Y]` row scales.
+    pub rq: OwnedScales,
+}
+
+/// Per-row requantization multipliers and shifts, owned (see
+/// [`lapwing::quant::RowScales`]).
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct OwnedScales {
+    /// Q31 multipliers.
+    pub mult: Vec<i32>,
+    /// Shifts (positive: right).
+    pub shift: Vec<i8>,
+}
+
+impl OwnedScales {
+    /// Appends the requantization of a real scale.
+    ///
+    /// # Errors
+    /// A scale no Q31 multiplier and shift can represent, named by `what`.
+    pub fn push_real(&mut self, scale: f64, what: &str) -> Result<()> {
+        let rq = Requant::from_real(scale).map_err(|e| anyhow::anyhow!("{what}: scale {scale:e}: {e}"))?;
+        let shift = i8::try_from(rq.shift).map_err(|_| anyhow::anyhow!("{what}: shift {} out of range", rq.shift))?;
+        self.mult.push(rq.mult);
+        self.shift.push(shift);
+        Ok(())
+    }
+
+    /// The borrowed form the core takes.
+    ///
+    /// # Errors
+    /// Out-of-range values, as the core reports them.
+    pub fn view(&self) -> Result<RowScales<'_>> {
+        RowScales::new(&self.mult, &self.shift).map_err(|e| anyhow::anyhow!("{e}"))
+    }
 }
 
 /// A quantized model, owned, with the real scales of its edges so the host
@@ -109,13 +141,13 @@ impl QuantModelData {
             .iter()
             .enumerate()
             .map(|(k, l)| {
-                QLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.bias, &l.rq_x, &l.rq_h, l.cell_frac)
+                QLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.bias, l.rq_x.view()?, l.rq_h.view()?, l.cell_frac)
                     .map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
             })
             .collect::<Result<Vec<_>>>()?;
         let head = match &self.head {
             Some(h) => {
-                Some(QHead::new(h.input, h.output, &h.w, &h.bias, &h.rq).map_err(|e| anyhow::anyhow!("head: {e}"))?)
+                Some(QHead::new(h.input, h.output, &h.w, &h.bias, h.rq.view()?).map_err(|e| anyhow::anyhow!("head: {e}"))?)
             }
             None => None,
         };
@@ -134,11 +166,6 @@ impl QuantModelData {
     pub fn dequantize_output(&self, y: &[i16]) -> Vec<f32> {
         y.iter().zip(&self.output_scale).map(|(v, s)| *v as f32 * s).collect()
     }
-}
-
-fn requant_pair(scale: f64, what: &str) -> Result<[i32; 2]> {
-    let rq = Requant::from_real(scale).map_err(|e| anyhow::anyhow!("{what}: scale {scale:e}: {e}"))?;
-    Ok([rq.mult, rq.shift])
 }
 
 /// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`.
@@ -239,11 +266,11 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
         let (w_h, sh) = quantize_rows(&l.w_h, l.hidden, &col_h);
         check_bound(&w_x, l.input, &format!("layer {k} input weights"))?;
         check_bound(&w_h, l.hidden, &format!("layer {k} recurrent weights"))?;
-        let mut rq_x = Vec::with_capacity(8 * l.hidden);
-        let mut rq_h = Vec::with_capacity(8 * l.hidden);
+        let mut rq_x = OwnedScales::default();
+        let mut rq_h = OwnedScales::default();
         for (row, (a, b)) in sx.iter().zip(&sh).enumerate() {
-            rq_x.extend(requant_pair(a * pre_unit, &format!("layer {k} input row {row}"))?);
-            rq_h.extend(requant_pair(b * pre_unit, &format!("layer {k} recurrent row {row}"))?);
+            rq_x.push_real(a * pre_unit, &format!("layer {k} input row {row}"))?;
+            rq_h.push_real(b * pre_unit, &format!("layer {k} recurrent row {row}"))?;
         }
         let bias = l.b.iter().map(|b| to_fixed_i32(*b as f64, PRE_FRAC as i32)).collect();
         let frac16 = cell_frac16(r.cell_absmax, opts.headroom);
@@ -261,9 +288,9 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
             if out_scale.len() != h.output {
                 bail!("calibration has {} outputs, the head has {}", out_scale.len(), h.output);
             }
-            let mut rq = Vec::new();
+            let mut rq = OwnedScales::default();
             for (row, (s, so)) in sw.iter().zip(&out_scale).enumerate() {
-                rq.extend(requant_pair(s / so, &format!("head row {row}"))?);
+                rq.push_real(s / so, &format!("head row {row}"))?;
             }
             let bias = h.b.iter().zip(&out_scale).map(|(b, so)| to_fixed_i32(*b as f64 / so, 0)).collect();
             let head = QuantHeadData { input: h.input, output: h.output, w, bias, rq };
