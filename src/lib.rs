@@ -12,6 +12,8 @@
 //! - [`activation`]: lookup-table sigmoid and tanh.
 //! - [`float`]: the `f32` reference LSTM (matches PyTorch `nn.LSTM`).
 //! - [`quant`]: the integer-only LSTM step (scheme `w8a16`, cell `c16`/`c32`).
+//! - [`model`]: the device blob (`.lwq`): zero-copy parse from flash with
+//!   every check done up front.
 //!
 //! ```
 //! use lapwing::quant::{CellWidth, QLayer, QModel, RowScales};
@@ -49,6 +51,7 @@ extern crate std;
 pub mod activation;
 pub mod fixed_point;
 pub mod float;
+pub mod model;
 pub mod quant;
 
 /// Most stacked LSTM layers a model may have.
@@ -184,6 +187,8 @@ pub enum Error {
         /// The value found.
         value: i32,
     },
+    /// A device blob was refused by [`model::Blob::parse`].
+    Blob(model::BlobError),
 }
 
 impl core::fmt::Display for Error {
@@ -209,6 +214,7 @@ impl core::fmt::Display for Error {
                 "{what} of layer {layer}, row {row}: sum of |w| times the largest input could overflow 32 bits"
             ),
             Error::Format { what, value } => write!(f, "{what} = {value} is out of range"),
+            Error::Blob(e) => write!(f, "{e}"),
         }
     }
 }

@@ -17,6 +17,7 @@
 //! ([`lapwing::quant::QModel::step`]): what the host reports is what the chip
 //! computes.
 
+pub mod blob;
 pub mod calibrate;
 pub mod compare;
 pub mod data;

@@ -1,0 +1,241 @@
+//! Writing and loading device blobs (`.lwq`).
+//!
+//! The format is defined, and parsed, by the core ([`lapwing::model`]); this
+//! module only serializes a [`QuantModelData`] into it and loads files into
+//! 4-byte aligned memory so the core can borrow them in place, exactly as
+//! the device does from flash.
+
+use crate::quantize::QuantModelData;
+use anyhow::{bail, Context, Result};
+use lapwing::model::{
+    Blob, SectionKind, ALIGN, CRC, ENTRY_LEN, HEADER_LEN, HEAD_KINDS, LAYER_KINDS, MAGIC, MODEL_KINDS,
+    VERSION,
+};
+use lapwing::quant::state_words_for;
+use std::path::Path;
+
+/// One section's payload, before layout.
+struct Payload {
+    kind: SectionKind,
+    layer: u8,
+    rows: u32,
+    cols: u32,
+    bytes: Vec<u8>,
+}
+
+fn i8_bytes(v: &[i8]) -> Vec<u8> {
+    v.iter().map(|x| *x as u8).collect()
+}
+
+fn i32_bytes(v: &[i32]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+fn f32_bytes(v: &[f32]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+fn dim(v: usize, what: &str) -> Result<u32> {
+    u32::try_from(v).ok().filter(|d| *d >= 1 && *d <= lapwing::model::MAX_DIM).with_context(|| {
+        format!("{what} = {v} is outside what a blob can hold (1..={})", lapwing::model::MAX_DIM)
+    })
+}
+
+fn payloads(q: &QuantModelData) -> Result<Vec<Payload>> {
+    let mut out = Vec::new();
+    for (k, l) in q.layers.iter().enumerate() {
+        let layer = u8::try_from(k).context("too many layers")?;
+        let (x, h) = (dim(l.input, "layer input")?, dim(l.hidden, "hidden size")?);
+        let rows = dim(4 * l.hidden, "4 * hidden size")?;
+        for kind in LAYER_KINDS {
+            let (r, c, bytes) = match kind {
+                SectionKind::LayerInfo => (1, 4, i32_bytes(&[x as i32, h as i32, l.cell_frac as i32, 0])),
+                SectionKind::LayerWx => (rows, x, i8_bytes(&l.w_x)),
+                SectionKind::LayerWh => (rows, h, i8_bytes(&l.w_h)),
+                SectionKind::LayerBias => (rows, 1, i32_bytes(&l.bias)),
+                SectionKind::LayerRqXMult => (rows, 1, i32_bytes(&l.rq_x.mult)),
+                SectionKind::LayerRqXShift => (rows, 1, i8_bytes(&l.rq_x.shift)),
+                SectionKind::LayerRqHMult => (rows, 1, i32_bytes(&l.rq_h.mult)),
+                SectionKind::LayerRqHShift => (rows, 1, i8_bytes(&l.rq_h.shift)),
+                other => bail!("internal: {other:?} is not a layer section"),
+            };
+            out.push(Payload { kind, layer, rows: r, cols: c, bytes });
+        }
+    }
+    if let Some(hd) = &q.head {
+        let (y, h) = (dim(hd.output, "head outputs")?, dim(hd.input, "head input")?);
+        for kind in HEAD_KINDS {
+            let (r, c, bytes) = match kind {
+                SectionKind::HeadW => (y, h, i8_bytes(&hd.w)),
+                SectionKind::HeadBias => (y, 1, i32_bytes(&hd.bias)),
+                SectionKind::HeadRqMult => (y, 1, i32_bytes(&hd.rq.mult)),
+                SectionKind::HeadRqShift => (y, 1, i8_bytes(&hd.rq.shift)),
+                other => bail!("internal: {other:?} is not a head section"),
+            };
+            out.push(Payload { kind, layer: 0, rows: r, cols: c, bytes });
+        }
+    }
+    for kind in MODEL_KINDS {
+        let v = if kind == SectionKind::InputScale { &q.input_scale } else { &q.output_scale };
+        out.push(Payload { kind, layer: 0, rows: dim(v.len(), kind.name())?, cols: 1, bytes: f32_bytes(v) });
+    }
+    Ok(out)
+}
+
+fn align_up(n: usize) -> usize {
+    n.div_ceil(ALIGN) * ALIGN
+}
+
+/// Serializes a quantized model into blob bytes (format version
+/// [`VERSION`]). The result parses with [`Blob::parse`]; this is checked
+/// before returning.
+///
+/// # Errors
+/// Dimensions the format cannot hold, or a model the core refuses.
+pub fn encode(q: &QuantModelData) -> Result<Vec<u8>> {
+    q.view().context("the quantized model is invalid")?;
+    let sections = payloads(q)?;
+    for s in &sections {
+        let size = s.kind.elem().size() * s.rows as usize * s.cols as usize;
+        if size != s.bytes.len() {
+            bail!("internal: section {} has {} bytes, dims say {size}", s.kind.name(), s.bytes.len());
+        }
+    }
+    let table_end = HEADER_LEN + sections.len() * ENTRY_LEN;
+    let mut offsets = Vec::with_capacity(sections.len());
+    let mut at = align_up(table_end);
+    for s in &sections {
+        offsets.push(at);
+        at = align_up(at + s.bytes.len());
+    }
+    let total = at + 4;
+    let output = q.output_scale.len();
+    let mut b = Vec::with_capacity(total);
+    b.extend_from_slice(&MAGIC);
+    b.extend_from_slice(&VERSION.to_le_bytes());
+    b.extend_from_slice(&(HEADER_LEN as u16).to_le_bytes());
+    b.push(0); // scheme w8a16
+    b.push(q.cell as u8);
+    b.push(q.table as u8);
+    b.push(u8::try_from(q.layers.len()).context("too many layers")?);
+    b.extend_from_slice(&u16::try_from(q.input_scale.len()).context("too many inputs")?.to_le_bytes());
+    b.extend_from_slice(&u16::try_from(output).context("too many outputs")?.to_le_bytes());
+    b.push(u8::from(q.head.is_some()));
+    b.push(0);
+    b.extend_from_slice(&u16::try_from(sections.len()).context("too many sections")?.to_le_bytes());
+    b.extend_from_slice(&u32::try_from(total).context("blob larger than 4 GiB")?.to_le_bytes());
+    let words = state_words_for(q.layers.iter().map(|l| l.hidden), q.cell);
+    b.extend_from_slice(&u32::try_from(words).context("state too large")?.to_le_bytes());
+    b.extend_from_slice(&0u32.to_le_bytes());
+    for (s, off) in sections.iter().zip(&offsets) {
+        b.push(s.kind as u8);
+        b.push(s.layer);
+        b.push(s.kind.elem() as u8);
+        b.push(0);
+        for v in [s.rows, s.cols, *off as u32, s.bytes.len() as u32] {
+            b.extend_from_slice(&v.to_le_bytes());
+        }
+    }
+    for (s, off) in sections.iter().zip(&offsets) {
+        b.resize(*off, 0);
+        b.extend_from_slice(&s.bytes);
+    }
+    b.resize(at, 0);
+    let crc = CRC.checksum(&b);
+    b.extend_from_slice(&crc.to_le_bytes());
+    let aligned = AlignedBytes::from_bytes(&b);
+    Blob::parse(aligned.bytes()).map_err(|e| anyhow::anyhow!("internal: the encoded blob does not parse: {e}"))?;
+    Ok(b)
+}
+
+/// Bytes held in 4-byte aligned storage, as the core's parser requires.
+#[derive(Clone, Debug)]
+pub struct AlignedBytes {
+    words: Vec<u32>,
+    len: usize,
+}
+
+impl AlignedBytes {
+    /// Copies `b` into aligned storage.
+    pub fn from_bytes(b: &[u8]) -> Self {
+        let mut words = vec![0u32; b.len().div_ceil(4)];
+        for (w, chunk) in words.iter_mut().zip(b.chunks(4)) {
+            let mut le = [0u8; 4];
+            le[..chunk.len()].copy_from_slice(chunk);
+            *w = u32::from_ne_bytes(le);
+        }
+        AlignedBytes { words, len: b.len() }
+    }
+
+    /// The bytes, starting at a 4-byte aligned address.
+    pub fn bytes(&self) -> &[u8] {
+        let all: &[u8] = bytemuck_bytes(&self.words);
+        all.get(..self.len).unwrap_or(all)
+    }
+}
+
+fn bytemuck_bytes(w: &[u32]) -> &[u8] {
+    // u32 -> u8 casts are always valid (alignment only decreases).
+    bytemuck::cast_slice(w)
+}
+
+/// A blob file loaded into aligned memory.
+#[derive(Clone, Debug)]
+pub struct LoadedBlob {
+    /// Where it came from.
+    pub path: std::path::PathBuf,
+    data: AlignedBytes,
+}
+
+impl LoadedBlob {
+    /// Reads a `.lwq` file and validates it with the core's parser.
+    ///
+    /// # Errors
+    /// The file cannot be read, or the parser refuses it (the message names
+    /// the file and the check that failed).
+    pub fn read(path: &Path) -> Result<Self> {
+        let raw = std::fs::read(path).with_context(|| format!("{}: cannot read", path.display()))?;
+        let me = LoadedBlob { path: path.to_path_buf(), data: AlignedBytes::from_bytes(&raw) };
+        me.parse()?;
+        Ok(me)
+    }
+
+    /// The parsed view (cheap: validation and CRC are re-run).
+    ///
+    /// # Errors
+    /// As [`LoadedBlob::read`].
+    pub fn parse(&self) -> Result<Blob<'_>> {
+        Blob::parse(self.data.bytes()).map_err(|e| anyhow::anyhow!("{}: not a valid blob: {e}", self.path.display()))
+    }
+
+    /// The raw bytes.
+    pub fn bytes(&self) -> &[u8] {
+        self.data.bytes()
+    }
+}
+
+/// Writes `bytes` to `path` atomically: a temporary file in the same
+/// directory, flushed, then renamed over the destination. On any error
+/// nothing is left at `path` (an existing file there is untouched).
+///
+/// # Errors
+/// The directory does not exist or is not writable.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    use std::io::Write;
+    let dir = match path.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d,
+        _ => Path::new("."),
+    };
+    if !dir.is_dir() {
+        bail!("{}: the output directory {} does not exist", path.display(), dir.display());
+    }
+    let mut tmp = tempfile::Builder::new()
+        .prefix(".lapwing-")
+        .suffix(".tmp")
+        .tempfile_in(dir)
+        .with_context(|| format!("{}: cannot create a temporary file in {}", path.display(), dir.display()))?;
+    tmp.write_all(bytes).with_context(|| format!("{}: write failed", path.display()))?;
+    tmp.as_file().sync_all().with_context(|| format!("{}: flush failed", path.display()))?;
+    tmp.persist(path).map_err(|e| anyhow::anyhow!("{}: cannot rename into place: {}", path.display(), e.error))?;
+    Ok(())
+}
