@@ -8,8 +8,7 @@
 use crate::quantize::QuantModelData;
 use anyhow::{bail, Context, Result};
 use lapwing::model::{
-    Blob, SectionKind, ALIGN, CRC, ENTRY_LEN, HEADER_LEN, HEAD_KINDS, LAYER_KINDS, MAGIC, MODEL_KINDS,
-    VERSION,
+    Blob, SectionKind, ALIGN, CRC, ENTRY_LEN, HEADER_LEN, HEAD_KINDS, LAYER_KINDS, MAGIC, MODEL_KINDS, VERSION,
 };
 use lapwing::quant::state_words_for;
 use std::path::Path;
@@ -36,9 +35,10 @@ fn f32_bytes(v: &[f32]) -> Vec<u8> {
 }
 
 fn dim(v: usize, what: &str) -> Result<u32> {
-    u32::try_from(v).ok().filter(|d| *d >= 1 && *d <= lapwing::model::MAX_DIM).with_context(|| {
-        format!("{what} = {v} is outside what a blob can hold (1..={})", lapwing::model::MAX_DIM)
-    })
+    u32::try_from(v)
+        .ok()
+        .filter(|d| *d >= 1 && *d <= lapwing::model::MAX_DIM)
+        .with_context(|| format!("{what} = {v} is outside what a blob can hold (1..={})", lapwing::model::MAX_DIM))
 }
 
 fn payloads(q: &QuantModelData) -> Result<Vec<Payload>> {
@@ -212,30 +212,4 @@ impl LoadedBlob {
     pub fn bytes(&self) -> &[u8] {
         self.data.bytes()
     }
-}
-
-/// Writes `bytes` to `path` atomically: a temporary file in the same
-/// directory, flushed, then renamed over the destination. On any error
-/// nothing is left at `path` (an existing file there is untouched).
-///
-/// # Errors
-/// The directory does not exist or is not writable.
-pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    use std::io::Write;
-    let dir = match path.parent() {
-        Some(d) if !d.as_os_str().is_empty() => d,
-        _ => Path::new("."),
-    };
-    if !dir.is_dir() {
-        bail!("{}: the output directory {} does not exist", path.display(), dir.display());
-    }
-    let mut tmp = tempfile::Builder::new()
-        .prefix(".lapwing-")
-        .suffix(".tmp")
-        .tempfile_in(dir)
-        .with_context(|| format!("{}: cannot create a temporary file in {}", path.display(), dir.display()))?;
-    tmp.write_all(bytes).with_context(|| format!("{}: write failed", path.display()))?;
-    tmp.as_file().sync_all().with_context(|| format!("{}: flush failed", path.display()))?;
-    tmp.persist(path).map_err(|e| anyhow::anyhow!("{}: cannot rename into place: {}", path.display(), e.error))?;
-    Ok(())
 }

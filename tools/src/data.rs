@@ -1,1 +1,913 @@
-//! Data input (being written).
+//! Data input and output: sensor recordings as CSV or `NumPy` `.npy`.
+//!
+//! The file type comes from the extension (case-insensitive):
+//!
+//! - **`.csv`**: a header row, then one row per time step. Every column is a
+//!   numeric feature (any name), except an optional column named `label`
+//!   (any case), which holds `0` or `1` per row and is carried separately,
+//!   never as a feature. Cells may have surrounding whitespace. Feature
+//!   values are parsed as `f32` (correctly rounded); empty cells,
+//!   non-numbers, `NaN`/`inf`, values outside the `f32` range, labels other
+//!   than 0 or 1 (`1.0` is accepted), rows with a different number of fields
+//!   than the header, empty or duplicate column names are errors. Errors name
+//!   the file, the 1-based line and the column (1-based index and header
+//!   name), for example `data.csv: line 17, column 3 ("vib_z"): "abc" is not
+//!   a number`.
+//! - **`.npy`**: one array of shape `[T, X]` (T steps, X features) or `[T]`
+//!   (one feature), dtype `float32` or `float64` in either byte order, C order
+//!   (Fortran order is refused unless it is the same layout, i.e. one row or
+//!   one column). `float64` values are rounded to the nearest `f32`. Columns
+//!   are named `x0, x1, ...`; there are no labels. Non-finite values are
+//!   errors naming the file and the element as numpy indexes it (`[row,
+//!   column]`, 0-based).
+//!
+//! A file with no data rows or no feature columns is an error.
+//!
+//! [`for_each_row`] streams a file row by row (with an optional progress bar
+//! on stderr); [`read`] loads it whole into a [`Dataset`]; [`write_csv`]
+//! writes a CSV atomically.
+
+use anyhow::{anyhow, bail, Context, Result};
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use std::cell::Cell;
+use std::fmt::Write as _;
+use std::fs::File;
+use std::io::{self, BufReader, Read};
+use std::path::{Path, PathBuf};
+use std::rc::Rc;
+
+/// Files larger than this many bytes get a progress bar when one is asked for.
+const PROGRESS_MIN_BYTES: u64 = 1 << 20;
+
+/// The progress bar is redrawn at most once per this many bytes read.
+const PROGRESS_STEP_BYTES: u64 = 64 << 10;
+
+/// What the accepted input kinds are, for error messages.
+const ACCEPTED: &str = "accepted: .csv (header row, numeric columns, optional `label` column) \
+                        or .npy (float32/float64, shape [T] or [T, X])";
+
+/// A whole data file in memory.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Dataset {
+    /// The file it was read from, as given.
+    pub path: PathBuf,
+    /// Feature column names, in file order (CSV header names without the
+    /// label column; `x0, x1, ...` for `.npy`).
+    pub columns: Vec<String>,
+    /// One row per time step, each with `columns.len()` finite values.
+    pub rows: Vec<Vec<f32>>,
+    /// Per-row labels (0 or 1) if the file had a `label` column, else `None`.
+    pub labels: Option<Vec<u8>>,
+}
+
+impl Dataset {
+    /// Number of feature columns (the label column is not one).
+    #[must_use]
+    pub fn features(&self) -> usize {
+        self.columns.len()
+    }
+
+    /// Number of rows (time steps).
+    #[must_use]
+    pub fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    /// Returns true if and only if there are no rows ([`read`] never returns
+    /// such a data set).
+    #[must_use]
+    pub fn is_empty(&self) -> bool {
+        self.rows.is_empty()
+    }
+
+    /// Checks that the data has as many feature columns as the model has
+    /// inputs.
+    ///
+    /// # Errors
+    /// If `features() != expected`, with a message such as `data.csv has 3
+    /// feature columns (a, b, c) but the model takes 4 inputs` (long column
+    /// lists are shortened).
+    pub fn expect_features(&self, expected: usize) -> Result<()> {
+        const SHOWN: usize = 12;
+        let n = self.features();
+        if n == expected {
+            return Ok(());
+        }
+        let mut list = self.columns.iter().take(SHOWN).map(String::as_str).collect::<Vec<_>>().join(", ");
+        if n > SHOWN {
+            let _ = write!(list, ", ... ({} more)", n - SHOWN);
+        }
+        bail!(
+            "{} has {} ({}) but the model takes {}",
+            self.path.display(),
+            count(n, "feature column", "feature columns"),
+            list,
+            count(expected, "input", "inputs")
+        )
+    }
+}
+
+/// `1 input`, `2 inputs`.
+fn count(n: usize, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
+
+/// Streams the rows of a `.csv` or `.npy` file (see the [module
+/// docs](self)) without holding the whole file in memory.
+///
+/// Calls `f(row_index, row, label)` once per row, in order: `row_index`
+/// counts data rows from 0 (the CSV header is not a row), `row` holds one
+/// finite value per feature column, `label` is `Some(0 or 1)` when the CSV
+/// has a `label` column and `None` otherwise. Returns the feature column
+/// names.
+///
+/// When `progress` is true and the file is larger than 1 MiB, a progress bar
+/// (bytes read of the file size) is drawn on stderr; it stays hidden when
+/// stderr is not a terminal, and is cleared when reading ends.
+///
+/// # Errors
+/// An unsupported extension, a file that cannot be opened, any format error
+/// listed in the module docs (naming file, line or row, and column), or an
+/// error returned by `f`, which gets the file and line (or row) as context.
+/// Rows before the failing one have already been passed to `f`.
+pub fn for_each_row(
+    path: &Path,
+    progress: bool,
+    f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
+) -> Result<Vec<String>> {
+    match Kind::of(path)? {
+        Kind::Csv => csv_rows(path, progress, f),
+        Kind::Npy => npy_rows(path, progress, f),
+    }
+}
+
+/// Reads a whole `.csv` or `.npy` file (see the [module docs](self)) into
+/// memory, through [`for_each_row`].
+///
+/// # Errors
+/// As [`for_each_row`].
+pub fn read(path: &Path, progress: bool) -> Result<Dataset> {
+    let mut rows = Vec::new();
+    let mut labels = Vec::new();
+    let columns = for_each_row(path, progress, |_, row, label| {
+        rows.push(row.to_vec());
+        if let Some(l) = label {
+            labels.push(l);
+        }
+        Ok(())
+    })?;
+    // The CSV reader gives a label for every row or for none.
+    let labels = (!labels.is_empty()).then_some(labels);
+    Ok(Dataset { path: path.to_path_buf(), columns, rows, labels })
+}
+
+/// Writes a CSV file with the given header and rows, atomically.
+///
+/// Values are written with Rust's `{}` formatting of `f32` (the shortest
+/// text that reads back to the same `f32`, never in exponent form);
+/// non-finite values are written as `NaN`, `inf`, `-inf`, which [`read`]
+/// refuses. Names containing commas or quotes are quoted. To write labels
+/// that [`read`] picks up, name a column `label` and give it 0.0 or 1.0.
+///
+/// The data goes to a temporary file in the destination's directory, which
+/// is renamed over `path` only once everything is written and synced, so
+/// `path` either keeps its old content or gets the whole new one; no partial
+/// file is left behind on error. On Unix the new file gets the usual
+/// permissions (`0o666` minus the umask).
+///
+/// # Errors
+/// An empty header, a row whose length differs from the header's, a
+/// destination directory that does not exist (named in the message), or an
+/// I/O error while writing or renaming.
+pub fn write_csv(path: &Path, header: &[String], rows: impl IntoIterator<Item = impl AsRef<[f32]>>) -> Result<()> {
+    let name = path.display();
+    if header.is_empty() {
+        bail!("cannot write {name}: no columns to write");
+    }
+    crate::output::write_atomic_with(path, |file| {
+        let mut w = csv::Writer::from_writer(file);
+        w.write_record(header).with_context(|| format!("cannot write {name}"))?;
+        let mut text = String::new();
+        for (i, row) in rows.into_iter().enumerate() {
+            let row = row.as_ref();
+            if row.len() != header.len() {
+                bail!(
+                    "cannot write {name}: row {i} has {} but the header has {}",
+                    count(row.len(), "value", "values"),
+                    count(header.len(), "column", "columns")
+                );
+            }
+            for v in row {
+                text.clear();
+                let _ = write!(text, "{v}");
+                w.write_field(&text).with_context(|| format!("cannot write {name}"))?;
+            }
+            w.write_record(None::<&[u8]>).with_context(|| format!("cannot write {name}"))?;
+        }
+        w.flush().with_context(|| format!("cannot write {name}"))?;
+        Ok(())
+    })
+}
+
+/// The input kinds, chosen by extension.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Kind {
+    Csv,
+    Npy,
+}
+
+impl Kind {
+    fn of(path: &Path) -> Result<Kind> {
+        let ext = path.extension().and_then(|e| e.to_str()).map(str::to_ascii_lowercase);
+        match ext.as_deref() {
+            Some("csv") => Ok(Kind::Csv),
+            Some("npy") => Ok(Kind::Npy),
+            Some(other) => bail!("{}: unsupported file type .{other} ({ACCEPTED})", path.display()),
+            None => bail!("{}: unsupported file type (no extension; {ACCEPTED})", path.display()),
+        }
+    }
+}
+
+/// A progress bar over the bytes of one file, cleared when dropped (so an
+/// error does not leave a stale bar behind).
+struct Progress {
+    bar: Option<ProgressBar>,
+    shown: u64,
+}
+
+impl Progress {
+    fn new(path: &Path, enabled: bool, file_len: Option<u64>) -> Progress {
+        let bar = match file_len {
+            Some(len) if enabled && len > PROGRESS_MIN_BYTES => {
+                let style = ProgressStyle::with_template("{msg} [{wide_bar}] {bytes}/{total_bytes} ({eta})")
+                    .unwrap_or_else(|_| ProgressStyle::default_bar());
+                let bar = ProgressBar::with_draw_target(Some(len), ProgressDrawTarget::stderr()).with_style(style);
+                bar.set_message(
+                    path.file_name().map_or_else(|| path.display().to_string(), |n| n.to_string_lossy().into_owned()),
+                );
+                Some(bar)
+            }
+            _ => None,
+        };
+        Progress { bar, shown: 0 }
+    }
+
+    fn update(&mut self, bytes_read: u64) {
+        if let Some(bar) = &self.bar {
+            if bytes_read.saturating_sub(self.shown) >= PROGRESS_STEP_BYTES {
+                bar.set_position(bytes_read);
+                self.shown = bytes_read;
+            }
+        }
+    }
+}
+
+impl Drop for Progress {
+    fn drop(&mut self) {
+        if let Some(bar) = &self.bar {
+            bar.finish_and_clear();
+        }
+    }
+}
+
+fn open(path: &Path) -> Result<(File, Option<u64>)> {
+    let file = File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
+    let len = file.metadata().ok().map(|m| m.len());
+    Ok((file, len))
+}
+
+/// Shows a cell in an error message: quoted, escaped and shortened.
+fn show(cell: &str) -> String {
+    const MAX: usize = 40;
+    if cell.chars().count() <= MAX {
+        format!("{cell:?}")
+    } else {
+        let head: String = cell.chars().take(MAX).collect();
+        format!("{head:?}...")
+    }
+}
+
+// ---------------------------------------------------------------- CSV
+
+fn csv_rows(
+    path: &Path,
+    progress: bool,
+    mut f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
+) -> Result<Vec<String>> {
+    let name = path.display();
+    let (file, file_len) = open(path)?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .trim(csv::Trim::All)
+        // Ragged rows are checked below, with a message naming the column.
+        .flexible(true)
+        .from_reader(file);
+    let header = rdr.headers().map_err(|e| csv_error(path, None, e))?.clone();
+    let header_line = header.position().map_or(1, csv::Position::line);
+    if header.is_empty() {
+        bail!("{name} has no data rows (the file is empty)");
+    }
+
+    let mut label_col: Option<usize> = None;
+    let mut columns = Vec::with_capacity(header.len());
+    for (i, h) in header.iter().enumerate() {
+        let at = format!("{name}: line {header_line}, column {} ({})", i + 1, show(h));
+        if h.is_empty() {
+            bail!(
+                "{at}: the column has no name (a pandas index column? save with `index=False`, \
+                 or give every column a name)"
+            );
+        }
+        if let Some(j) = header.iter().take(i).position(|other| other == h) {
+            bail!("{at}: column {} has the same name", j + 1);
+        }
+        if h.eq_ignore_ascii_case("label") {
+            if let Some(j) = label_col {
+                bail!("{at}: a second label column (column {} is one already)", j + 1);
+            }
+            label_col = Some(i);
+        } else {
+            columns.push(h.to_string());
+        }
+    }
+    if columns.is_empty() {
+        bail!("{name} has no feature columns (only a label column)");
+    }
+
+    let mut progress = Progress::new(path, progress, file_len);
+    let mut record = csv::StringRecord::new();
+    let mut row: Vec<f32> = Vec::with_capacity(columns.len());
+    let mut index = 0usize;
+    loop {
+        let more = rdr.read_record(&mut record).map_err(|e| csv_error(path, Some(&header), e))?;
+        if !more {
+            break;
+        }
+        let (line, byte) = record.position().map_or((0, 0), |p| (p.line(), p.byte()));
+        if record.len() != header.len() {
+            let fields = count(record.len(), "field", "fields");
+            let cols = count(header.len(), "column", "columns");
+            if record.len() < header.len() {
+                let missing = record.len();
+                let h = header.get(missing).unwrap_or("");
+                bail!(
+                    "{name}: line {line}, column {} ({}): missing (the row has {fields} but the header has {cols})",
+                    missing + 1,
+                    show(h)
+                );
+            }
+            let extra = header.len();
+            bail!(
+                "{name}: line {line}, column {} (beyond the header): extra field {} (the row has {fields} but \
+                 the header has {cols})",
+                extra + 1,
+                show(record.get(extra).unwrap_or(""))
+            );
+        }
+
+        row.clear();
+        let mut label = None;
+        for (i, (cell, h)) in record.iter().zip(header.iter()).enumerate() {
+            let at = || format!("{name}: line {line}, column {} ({})", i + 1, show(h));
+            if Some(i) == label_col {
+                label = Some(parse_label(cell).map_err(|why| anyhow!("{}: {why}", at()))?);
+            } else {
+                row.push(parse_value(cell).map_err(|why| anyhow!("{}: {why}", at()))?);
+            }
+        }
+        f(index, &row, label).with_context(|| format!("{name}: line {line}"))?;
+        index += 1;
+        progress.update(byte);
+    }
+    if index == 0 {
+        bail!("{name} has no data rows (only a header)");
+    }
+    Ok(columns)
+}
+
+/// Turns a reader error into a message naming file, line and column where
+/// the CSV reader knows them (invalid UTF-8); `header` is `None` while the
+/// header itself is being read.
+fn csv_error(path: &Path, header: Option<&csv::StringRecord>, e: csv::Error) -> anyhow::Error {
+    let name = path.display();
+    match e.kind() {
+        csv::ErrorKind::Utf8 { pos: Some(pos), err } => {
+            let col = err.field();
+            let title = header.and_then(|h| h.get(col)).map_or_else(String::new, |h| format!(" ({})", show(h)));
+            anyhow!(
+                "{name}: line {}, column {}{title}: not valid UTF-8 text (save the file as UTF-8)",
+                pos.line(),
+                col + 1
+            )
+        }
+        csv::ErrorKind::Io(_) => anyhow::Error::new(e).context(format!("{name}: cannot read")),
+        _ => anyhow::Error::new(e).context(format!("{name}: malformed CSV")),
+    }
+}
+
+/// Parses one feature cell (already trimmed) to a finite `f32`.
+fn parse_value(cell: &str) -> std::result::Result<f32, String> {
+    if cell.is_empty() {
+        return Err("empty cell".to_string());
+    }
+    match cell.parse::<f32>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        // `1e39` parses to infinity as f32 but is a finite number.
+        Ok(_) if cell.parse::<f64>().is_ok_and(f64::is_finite) => {
+            Err(format!("{} is outside the f32 range", show(cell)))
+        }
+        Ok(_) => Err(format!("{} is not a finite number", show(cell))),
+        Err(_) => Err(format!("{} is not a number", show(cell))),
+    }
+}
+
+/// Parses one label cell (already trimmed): 0 or 1, also written as `0.0`.
+fn parse_label(cell: &str) -> std::result::Result<u8, String> {
+    if cell.is_empty() {
+        return Err("empty cell (labels must be 0 or 1)".to_string());
+    }
+    match cell.parse::<f64>() {
+        Ok(0.0) => Ok(0),
+        Ok(1.0) => Ok(1),
+        _ => Err(format!("{} is not a valid label (expected 0 or 1)", show(cell))),
+    }
+}
+
+// ---------------------------------------------------------------- .npy
+
+/// Counts the bytes handed to the `.npy` parser: after the header this is
+/// the header's length, later the progress position.
+struct CountingReader<R> {
+    inner: R,
+    count: Rc<Cell<u64>>,
+}
+
+impl<R: Read> Read for CountingReader<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.count.set(self.count.get().saturating_add(n as u64));
+        Ok(n)
+    }
+}
+
+/// Shape of the array in a `.npy` file, as rows of features.
+#[derive(Clone, Copy)]
+struct NpyShape {
+    rows: usize,
+    cols: usize,
+    one_dim: bool,
+}
+
+impl NpyShape {
+    /// The element as numpy indexes it: `[r, c]`, or `[r]` for a 1-D array.
+    fn at(self, r: usize, c: usize) -> String {
+        if self.one_dim {
+            format!("[{r}]")
+        } else {
+            format!("[{r}, {c}]")
+        }
+    }
+}
+
+fn npy_rows(
+    path: &Path,
+    progress: bool,
+    f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
+) -> Result<Vec<String>> {
+    let name = path.display();
+    let (file, file_len) = open(path)?;
+    let consumed = Rc::new(Cell::new(0u64));
+    let reader = CountingReader { inner: BufReader::new(file), count: Rc::clone(&consumed) };
+    let npy = npyz::NpyFile::new(reader).with_context(|| format!("{name}: not a valid .npy file"))?;
+
+    let dims = npy.shape().to_vec();
+    let shape_text = format!("{dims:?}");
+    let (rows, cols, one_dim) = match dims.as_slice() {
+        [t] => (*t, 1, true),
+        [t, x] => (*t, *x, false),
+        _ => bail!(
+            "{name}: the array has shape {shape_text} ({} dimensions); expected [T] or [T, X] (time steps, features)",
+            dims.len()
+        ),
+    };
+    let too_big = || anyhow!("{name}: shape {shape_text} is too large for this machine");
+    let shape = NpyShape {
+        rows: usize::try_from(rows).map_err(|_| too_big())?,
+        cols: usize::try_from(cols).map_err(|_| too_big())?,
+        one_dim,
+    };
+    if shape.cols == 0 {
+        bail!("{name} has no feature columns (shape {shape_text})");
+    }
+    if shape.rows == 0 {
+        bail!("{name} has no data rows (shape {shape_text})");
+    }
+    // Fortran order stores column after column; it only matches row-major
+    // order when there is one row or one column.
+    if npy.order() == npyz::Order::Fortran && shape.rows > 1 && shape.cols > 1 {
+        bail!(
+            "{name}: the array is stored in Fortran (column-major) order, which cannot be read row by row; \
+             save it with `np.save(path, np.ascontiguousarray(a))`"
+        );
+    }
+
+    let dtype = npy.dtype();
+    let item_bytes: u64 = match &dtype {
+        npyz::DType::Plain(ts) if ts.type_char() == npyz::TypeChar::Float && matches!(ts.size_field(), 4 | 8) => {
+            ts.size_field()
+        }
+        other => bail!(
+            "{name}: dtype {} is not supported (shape {shape_text}); expected float32 or float64, \
+             e.g. save `a.astype(np.float32)`",
+            other.descr()
+        ),
+    };
+
+    // Catch a truncated file before streaming any of it.
+    let header_bytes = consumed.get();
+    if let (Some(len), Some(data)) = (file_len, rows.checked_mul(cols).and_then(|n| n.checked_mul(item_bytes))) {
+        let have = len.saturating_sub(header_bytes);
+        if have < data {
+            bail!(
+                "{name}: the file is truncated: shape {shape_text} of {} needs {data} bytes of data but only \
+                 {have} follow the header",
+                dtype.descr()
+            );
+        }
+    }
+
+    let progress = Progress::new(path, progress, file_len);
+    let columns: Vec<String> = (0..shape.cols).map(|i| format!("x{i}")).collect();
+    let ctx = NpyStream { path, shape, consumed, progress };
+    if item_bytes == 4 {
+        let data = npy.data::<f32>().map_err(|e| anyhow!("{name}: {e}"))?;
+        ctx.run(data, f)?;
+    } else {
+        let data = npy.data::<f64>().map_err(|e| anyhow!("{name}: {e}"))?;
+        ctx.run(data, f)?;
+    }
+    Ok(columns)
+}
+
+struct NpyStream<'a> {
+    path: &'a Path,
+    shape: NpyShape,
+    consumed: Rc<Cell<u64>>,
+    progress: Progress,
+}
+
+impl NpyStream<'_> {
+    fn run<T: Into<f64>>(
+        mut self,
+        mut data: impl Iterator<Item = io::Result<T>>,
+        mut f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
+    ) -> Result<()> {
+        let name = self.path.display();
+        let shape = self.shape;
+        let mut row: Vec<f32> = Vec::with_capacity(shape.cols);
+        for r in 0..shape.rows {
+            row.clear();
+            for c in 0..shape.cols {
+                let at = || format!("{name}: element {} (row {r}, column \"x{c}\")", shape.at(r, c));
+                let wide: f64 = data
+                    .next()
+                    .ok_or_else(|| anyhow!("{}: the data ends early", at()))?
+                    .with_context(|| format!("{}: cannot read", at()))?
+                    .into();
+                // Rounds to nearest; values beyond the f32 range become infinite.
+                #[allow(clippy::cast_possible_truncation)]
+                let v = wide as f32;
+                if !wide.is_finite() {
+                    bail!("{}: {wide} is not a finite number", at());
+                }
+                if !v.is_finite() {
+                    bail!("{}: {wide} is outside the f32 range", at());
+                }
+                row.push(v);
+            }
+            f(r, &row, None).with_context(|| format!("{name}: row {r}"))?;
+            self.progress.update(self.consumed.get());
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::fs;
+
+    /// Writes `text` to `name` in a fresh directory.
+    fn file(name: &str, text: &str) -> (tempfile::TempDir, PathBuf) {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join(name);
+        fs::write(&path, text).unwrap();
+        (dir, path)
+    }
+
+    /// Reads `text` as `data.csv` and returns the error message (with context).
+    fn csv_err(text: &str) -> String {
+        let (_dir, path) = file("data.csv", text);
+        format!("{:#}", read(&path, false).unwrap_err())
+    }
+
+    fn assert_has(msg: &str, parts: &[&str]) {
+        for p in parts {
+            assert!(msg.contains(p), "message {msg:?} lacks {p:?}");
+        }
+    }
+
+    /// Hand-built `.npy` v1.0 file: magic, version, header length, header
+    /// dict padded to 64 bytes, then `data` (already in the dtype's bytes).
+    fn npy_bytes(descr: &str, fortran: bool, shape: &[u64], data: &[u8]) -> Vec<u8> {
+        let shape_text = match shape {
+            [n] => format!("({n},)"),
+            _ => format!("({})", shape.iter().map(u64::to_string).collect::<Vec<_>>().join(", ")),
+        };
+        let fortran = if fortran { "True" } else { "False" };
+        let mut dict = format!("{{'descr': '{descr}', 'fortran_order': {fortran}, 'shape': {shape_text}, }}");
+        while (10 + dict.len() + 1) % 64 != 0 {
+            dict.push(' ');
+        }
+        dict.push('\n');
+        let mut out = b"\x93NUMPY\x01\x00".to_vec();
+        out.extend_from_slice(&u16::try_from(dict.len()).unwrap().to_le_bytes());
+        out.extend_from_slice(dict.as_bytes());
+        out.extend_from_slice(data);
+        out
+    }
+
+    fn npy_file(descr: &str, fortran: bool, shape: &[u64], data: &[u8]) -> (tempfile::TempDir, PathBuf) {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.npy");
+        fs::write(&path, npy_bytes(descr, fortran, shape, data)).unwrap();
+        (dir, path)
+    }
+
+    fn le_f32(v: &[f32]) -> Vec<u8> {
+        v.iter().flat_map(|x| x.to_le_bytes()).collect()
+    }
+
+    #[test]
+    fn csv_with_label() {
+        let (_dir, path) = file("data.csv", "vib_x, Label ,vib_z\n 1.5 ,0, -2\n3e-2,1,4\n\n-0.25 , 1 ,1e3\n");
+        let d = read(&path, true).unwrap();
+        assert_eq!(d.columns, ["vib_x", "vib_z"]);
+        assert_eq!(d.rows, vec![vec![1.5, -2.0], vec![0.03, 4.0], vec![-0.25, 1000.0]]);
+        assert_eq!(d.labels, Some(vec![0, 1, 1]));
+        assert_eq!((d.len(), d.features(), d.is_empty()), (3, 2, false));
+        assert_eq!(d.path, path);
+    }
+
+    #[test]
+    fn csv_without_label_and_streaming() {
+        let (_dir, path) = file("DATA.CSV", "\u{feff}a,b\n1,2\n3,4\n");
+        let mut seen = Vec::new();
+        let cols = for_each_row(&path, false, |i, row, label| {
+            seen.push((i, row.to_vec(), label));
+            Ok(())
+        })
+        .unwrap();
+        assert_eq!(cols, ["a", "b"]);
+        assert_eq!(seen, vec![(0, vec![1.0, 2.0], None), (1, vec![3.0, 4.0], None)]);
+        assert_eq!(read(&path, false).unwrap().labels, None);
+    }
+
+    #[test]
+    fn csv_callback_error_gets_line() {
+        let (_dir, path) = file("data.csv", "a\n1\n2\n");
+        let err = for_each_row(&path, false, |i, _, _| if i == 1 { bail!("stop here") } else { Ok(()) }).unwrap_err();
+        assert_has(&format!("{err:#}"), &["data.csv: line 3", "stop here"]);
+    }
+
+    #[test]
+    fn csv_not_a_number() {
+        let msg = csv_err("vib_x,vib_y,vib_z\n1,2,3\n1,2, abc \n");
+        assert_has(&msg, &["data.csv: line 3, column 3 (\"vib_z\"): \"abc\" is not a number"]);
+    }
+
+    #[test]
+    fn csv_empty_cell() {
+        let msg = csv_err("a,b\n1,\n");
+        assert_has(&msg, &["data.csv", "line 2", "column 2 (\"b\")", "empty cell"]);
+    }
+
+    #[test]
+    fn csv_non_finite() {
+        for bad in ["NaN", "nan", "inf", "-Infinity"] {
+            let msg = csv_err(&format!("a,b\n1,2\n{bad},2\n"));
+            assert_has(&msg, &["data.csv", "line 3", "column 1 (\"a\")", "is not a finite number"]);
+        }
+        let msg = csv_err("a,b\n1,1e39\n");
+        assert_has(&msg, &["data.csv", "line 2", "column 2 (\"b\")", "outside the f32 range"]);
+    }
+
+    #[test]
+    fn csv_bad_label() {
+        for bad in ["2", "-1", "0.5", "yes", ""] {
+            let msg = csv_err(&format!("a,label\n1,0\n1,{bad}\n"));
+            assert_has(&msg, &["data.csv", "line 3", "column 2 (\"label\")"]);
+        }
+        let (_dir, path) = file("data.csv", "a,LABEL\n1,1.0\n2,0.0\n");
+        assert_eq!(read(&path, false).unwrap().labels, Some(vec![1, 0]));
+    }
+
+    #[test]
+    fn csv_ragged_rows() {
+        let msg = csv_err("a,b,c\n1,2,3\n1,2\n");
+        assert_has(&msg, &["data.csv", "line 3", "column 3 (\"c\")", "missing", "2 fields", "3 columns"]);
+        let msg = csv_err("a,b\n1,2\n1,2,3\n");
+        assert_has(&msg, &["data.csv", "line 3", "column 3", "extra field \"3\""]);
+    }
+
+    #[test]
+    fn csv_invalid_utf8() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.csv");
+        fs::write(&path, b"a,b\n1,2\n3,\xff\n").unwrap();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.csv: line 3, column 2 (\"b\")", "UTF-8"]);
+        fs::write(&path, b"a,\xff\n1,2\n").unwrap();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.csv: line 1, column 2", "UTF-8"]);
+    }
+
+    #[test]
+    fn large_files_with_progress() {
+        let rows = 150_000;
+        let mut text = String::from("a,b,label\n");
+        for i in 0..rows {
+            let _ = writeln!(text, "{}.5,-2.25,{}", i % 100, i % 2);
+        }
+        assert!(text.len() as u64 > PROGRESS_MIN_BYTES);
+        let (_dir, path) = file("big.csv", &text);
+        let d = read(&path, true).unwrap();
+        assert_eq!((d.len(), d.features()), (rows, 2));
+        assert_eq!(d.rows.last(), Some(&vec![99.5, -2.25]));
+
+        let values: Vec<f32> = (0..rows * 2).map(|i| i as f32).collect();
+        let (_dir2, path) = npy_file("<f4", false, &[rows as u64, 2], &le_f32(&values));
+        let mut n = 0;
+        for_each_row(&path, true, |i, row, _| {
+            assert_eq!(row, [(2 * i) as f32, (2 * i + 1) as f32]);
+            n += 1;
+            Ok(())
+        })
+        .unwrap();
+        assert_eq!(n, rows);
+    }
+
+    #[test]
+    fn csv_no_rows() {
+        assert_has(&csv_err("a,b\n"), &["data.csv", "has no data rows"]);
+        assert_has(&csv_err("a,b"), &["data.csv", "has no data rows"]);
+        assert_has(&csv_err(""), &["data.csv", "has no data rows"]);
+    }
+
+    #[test]
+    fn csv_bad_header() {
+        assert_has(&csv_err("label\n1\n"), &["data.csv", "no feature columns"]);
+        assert_has(&csv_err(",a\n0,1\n"), &["data.csv", "line 1, column 1", "no name"]);
+        assert_has(&csv_err("a,b,a\n0,1,2\n"), &["data.csv", "line 1, column 3 (\"a\")", "column 1"]);
+        assert_has(&csv_err("label,a,Label\n0,1,1\n"), &["data.csv", "line 1, column 3", "second label"]);
+    }
+
+    #[test]
+    fn unsupported_and_missing_files() {
+        let (_dir, path) = file("data.txt", "a\n1\n");
+        assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.txt", ".csv", ".npy"]);
+        let (_dir, path) = file("data", "a\n1\n");
+        assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data", "no extension", ".csv"]);
+        let dir = tempfile::tempdir().unwrap();
+        let missing = dir.path().join("nope.csv");
+        assert_has(&format!("{:#}", read(&missing, false).unwrap_err()), &["nope.csv"]);
+    }
+
+    #[test]
+    fn npy_f32_2d() {
+        let (_dir, path) = npy_file("<f4", false, &[3, 2], &le_f32(&[1.0, -2.0, 0.5, 3.0, 1e-3, 7.0]));
+        let d = read(&path, false).unwrap();
+        assert_eq!(d.columns, ["x0", "x1"]);
+        assert_eq!(d.rows, vec![vec![1.0, -2.0], vec![0.5, 3.0], vec![1e-3, 7.0]]);
+        assert_eq!(d.labels, None);
+    }
+
+    #[test]
+    fn npy_f64_and_big_endian() {
+        let values = [0.1f64, 2.5, -3.0, 1e-10];
+        let le: Vec<u8> = values.iter().flat_map(|x| x.to_le_bytes()).collect();
+        let (_dir, path) = npy_file("<f8", false, &[2, 2], &le);
+        let d = read(&path, false).unwrap();
+        assert_eq!(d.rows, vec![vec![0.1f32, 2.5], vec![-3.0, 1e-10]]);
+
+        let be: Vec<u8> = [1.5f32, -4.0].iter().flat_map(|x| x.to_be_bytes()).collect();
+        let (_dir2, path) = npy_file(">f4", false, &[2], &be);
+        assert_eq!(read(&path, false).unwrap().rows, vec![vec![1.5], vec![-4.0]]);
+    }
+
+    #[test]
+    fn npy_1d() {
+        let (_dir, path) = npy_file("<f4", false, &[3], &le_f32(&[1.0, 2.0, 3.0]));
+        let d = read(&path, false).unwrap();
+        assert_eq!(d.columns, ["x0"]);
+        assert_eq!(d.rows, vec![vec![1.0], vec![2.0], vec![3.0]]);
+        // One column is the same layout in Fortran order.
+        let (_dir2, path) = npy_file("<f4", true, &[3, 1], &le_f32(&[1.0, 2.0, 3.0]));
+        assert_eq!(read(&path, false).unwrap().rows.len(), 3);
+    }
+
+    #[test]
+    fn npy_written_by_npyz() {
+        use npyz::WriterBuilder;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("w.NPY");
+        let mut w = npyz::WriteOptions::<f64>::new()
+            .default_dtype()
+            .shape(&[2, 3])
+            .writer(io::BufWriter::new(File::create(&path).unwrap()))
+            .begin_nd()
+            .unwrap();
+        w.extend([1.0, 2.0, 3.0, 4.0, 5.0, 6.0]).unwrap();
+        w.finish().unwrap();
+        let d = read(&path, false).unwrap();
+        assert_eq!(d.rows, vec![vec![1.0, 2.0, 3.0], vec![4.0, 5.0, 6.0]]);
+    }
+
+    #[test]
+    fn npy_non_finite() {
+        let (_dir, path) = npy_file("<f4", false, &[2, 3], &le_f32(&[1.0, 2.0, 3.0, 4.0, f32::NAN, 6.0]));
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "[1, 1]", "row 1", "\"x1\"", "NaN is not a finite number"]);
+        let big: Vec<u8> = [1.0f64, 1e300].iter().flat_map(|x| x.to_le_bytes()).collect();
+        let (_dir2, path) = npy_file("<f8", false, &[2], &big);
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "[1]", "outside the f32 range"]);
+    }
+
+    #[test]
+    fn npy_refusals() {
+        let err = |descr: &str, fortran: bool, shape: &[u64], data: &[u8]| {
+            let (_dir, path) = npy_file(descr, fortran, shape, data);
+            format!("{:#}", read(&path, false).unwrap_err())
+        };
+        assert_has(&err("<i4", false, &[2], &[0; 8]), &["data.npy", "dtype '<i4'", "float32"]);
+        assert_has(&err("<f4", false, &[1, 2, 2], &[0; 16]), &["data.npy", "[1, 2, 2]", "[T, X]"]);
+        assert_has(&err("<f4", true, &[2, 2], &[0; 16]), &["data.npy", "Fortran"]);
+        assert_has(&err("<f4", false, &[0, 2], &[]), &["data.npy", "no data rows"]);
+        assert_has(&err("<f4", false, &[2, 0], &[]), &["data.npy", "no feature columns"]);
+        assert_has(&err("<f4", false, &[3, 2], &[0; 20]), &["data.npy", "truncated", "24 bytes", "20"]);
+        let (_dir, path) = file("data.npy", "not numpy at all");
+        assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "not a valid .npy"]);
+    }
+
+    #[test]
+    fn expect_features_message() {
+        let d = Dataset {
+            path: PathBuf::from("data.csv"),
+            columns: vec!["a".into(), "b".into(), "c".into()],
+            rows: vec![vec![0.0; 3]],
+            labels: None,
+        };
+        assert!(d.expect_features(3).is_ok());
+        let msg = d.expect_features(4).unwrap_err().to_string();
+        assert_eq!(msg, "data.csv has 3 feature columns (a, b, c) but the model takes 4 inputs");
+    }
+
+    #[test]
+    fn write_csv_round_trip() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("out.csv");
+        fs::write(&path, "old content\n").unwrap();
+        let header = vec!["a, with comma".to_string(), "b".to_string(), "label".to_string()];
+        let rows = vec![vec![0.1f32, -1e-7, 1.0], vec![f32::MAX, f32::MIN_POSITIVE, 0.0], vec![1.0 / 3.0, 42.0, 1.0]];
+        write_csv(&path, &header, &rows).unwrap();
+        let d = read(&path, false).unwrap();
+        assert_eq!(d.columns, ["a, with comma", "b"]);
+        let features: Vec<Vec<f32>> = rows.iter().map(|r| r[..2].to_vec()).collect();
+        assert_eq!(d.rows, features, "values must read back bit for bit");
+        assert_eq!(d.labels, Some(vec![1, 0, 1]));
+        // Only the destination is left in the directory.
+        assert_eq!(fs::read_dir(dir.path()).unwrap().count(), 1);
+    }
+
+    #[test]
+    fn write_csv_missing_directory() {
+        let dir = tempfile::tempdir().unwrap();
+        let missing = dir.path().join("no_such_dir");
+        let path = missing.join("out.csv");
+        let msg = format!("{:#}", write_csv(&path, &["a".to_string()], [[1.0f32]]).unwrap_err());
+        assert_has(&msg, &["no_such_dir", "does not exist"]);
+        assert!(!missing.exists());
+        assert_eq!(fs::read_dir(dir.path()).unwrap().count(), 0);
+    }
+
+    #[test]
+    fn write_csv_bad_row_leaves_nothing() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("out.csv");
+        let rows: Vec<Vec<f32>> = vec![vec![1.0, 2.0], vec![3.0]];
+        let msg = format!("{:#}", write_csv(&path, &["a".to_string(), "b".to_string()], &rows).unwrap_err());
+        assert_has(&msg, &["out.csv", "row 1", "1 value", "2 columns"]);
+        assert_eq!(fs::read_dir(dir.path()).unwrap().count(), 0);
+    }
+}

@@ -25,5 +25,6 @@ pub mod example;
 pub mod float_model;
 pub mod import;
 pub mod metrics;
+pub mod output;
 pub mod quantize;
 pub mod synth;
