@@ -575,7 +575,13 @@ fn dims_what(section: &'static str, rows: bool) -> &'static str {
     }
 }
 
-fn scales<'a>(found: &Found<'a>, mult: SectionKind, shift: SectionKind, layer: u8, rows: u32) -> Result<RowScales<'a>, Error> {
+fn scales<'a>(
+    found: &Found<'a>,
+    mult: SectionKind,
+    shift: SectionKind,
+    layer: u8,
+    rows: u32,
+) -> Result<RowScales<'a>, Error> {
     let m = found.i32s(mult, layer, rows, 1)?;
     let s = found.i8s(shift, layer, rows, 1)?;
     RowScales::new(m, s)
@@ -631,7 +637,10 @@ impl<'a> Blob<'a> {
             if body.get(end..start).is_some_and(|gap| gap.iter().any(|b| *b != 0)) {
                 return Err(problem("padding before the payload is not zero").into());
             }
-            end = start.checked_add(info.len as usize).filter(|e| *e <= crc_at).ok_or(problem("payload runs past the end"))?;
+            end = start
+                .checked_add(info.len as usize)
+                .filter(|e| *e <= crc_at)
+                .ok_or(problem("payload runs past the end"))?;
             if info.kind.per_layer() {
                 if info.layer >= header.layers {
                     return Err(problem("layer index beyond the header's layer count").into());
@@ -658,13 +667,20 @@ impl<'a> Blob<'a> {
             let info = found.i32s(SectionKind::LayerInfo, k, 1, 4)?;
             let [x, h, frac, zero] = [0, 1, 2, 3].map(|i| info.get(i).copied().unwrap_or(-1));
             if x as u32 != prev || x <= 0 {
-                return Err(BlobError::Dims { what: "layer input (header X or previous H)", expected: prev, got: x as u32 }.into());
+                return Err(BlobError::Dims {
+                    what: "layer input (header X or previous H)",
+                    expected: prev,
+                    got: x as u32,
+                }
+                .into());
             }
             if !(1..=MAX_DIM as i32 / 4).contains(&h) {
                 return Err(BlobError::Dims { what: "layer hidden size", expected: 1, got: h as u32 }.into());
             }
             if !(0..=31).contains(&frac) || zero != 0 {
-                return Err(BlobError::Section { index: k as usize, problem: "layer info has a bad cell format" }.into());
+                return Err(
+                    BlobError::Section { index: k as usize, problem: "layer info has a bad cell format" }.into()
+                );
             }
             let (xu, hu) = (x as u32, h as u32);
             let rows = 4 * hu;
@@ -685,7 +701,9 @@ impl<'a> Blob<'a> {
             Some(QHead::new(prev as usize, out as usize, w, bias, rq)?)
         } else {
             if out != prev {
-                return Err(BlobError::Dims { what: "output count without a head (last H)", expected: prev, got: out }.into());
+                return Err(
+                    BlobError::Dims { what: "output count without a head (last H)", expected: prev, got: out }.into()
+                );
             }
             None
         };
@@ -807,10 +825,7 @@ mod tests {
         let mut bad = b;
         bad[33] ^= 1;
         let (w, n) = aligned(&bad);
-        assert!(matches!(
-            Blob::parse(&bytemuck::cast_slice(&w)[..n]),
-            Err(Error::Blob(BlobError::Crc { .. }))
-        ));
+        assert!(matches!(Blob::parse(&bytemuck::cast_slice(&w)[..n]), Err(Error::Blob(BlobError::Crc { .. }))));
     }
 
     #[test]

@@ -603,7 +603,10 @@ mod tests {
 
     #[test]
     fn bad_requant_is_refused() {
-        assert_eq!(RowScales::new(&M1, &[0, 0, 99, 0]).unwrap_err(), Error::Format { what: "requant shift", value: 99 });
+        assert_eq!(
+            RowScales::new(&M1, &[0, 0, 99, 0]).unwrap_err(),
+            Error::Format { what: "requant shift", value: 99 }
+        );
         assert_eq!(
             RowScales::new(&[0, -5, 0, 0], &S1).unwrap_err(),
             Error::Format { what: "requant multiplier", value: -5 }

@@ -21,18 +21,13 @@ use lapwing::float::FloatModel;
 use lapwing::Probe;
 
 /// How a range is taken from the observed values.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
 pub enum RangeMethod {
     /// Largest magnitude seen.
+    #[default]
     MinMax,
     /// The given percentile (in `(0, 100]`) of the magnitudes.
     Percentile(f64),
-}
-
-impl Default for RangeMethod {
-    fn default() -> Self {
-        RangeMethod::MinMax
-    }
 }
 
 /// Observed ranges of one layer.

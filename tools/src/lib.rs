@@ -19,12 +19,15 @@
 
 pub mod blob;
 pub mod calibrate;
+pub mod codegen;
 pub mod compare;
 pub mod data;
 pub mod example;
 pub mod float_model;
 pub mod import;
+pub mod inspect;
 pub mod metrics;
 pub mod output;
+pub mod pipeline;
 pub mod quantize;
 pub mod synth;

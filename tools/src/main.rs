@@ -2,11 +2,17 @@
 //! picks the exit status in one place: 0 success (or within budget), 1 budget
 //! violated, 2 any error.
 
+use anyhow::Context;
 use clap::{Parser, Subcommand, ValueEnum};
 use lapwing::activation::TableKind;
 use lapwing::quant::CellWidth;
-use lapwing_tools::example;
-use lapwing_tools::quantize::QuantOptions;
+use lapwing_tools::blob::{encode, LoadedBlob};
+use lapwing_tools::calibrate::RangeMethod;
+use lapwing_tools::import::{ImportOptions, Layout};
+use lapwing_tools::pipeline::{self, NormSource, RunValues, Runnable};
+use lapwing_tools::quantize::{quantize, QuantOptions};
+use lapwing_tools::{codegen, example, inspect, output};
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 /// Quantize float LSTM models to integer-only fixed point for microcontrollers,
@@ -22,20 +28,20 @@ struct Cli {
 enum Command {
     /// Train a next-step predictor on normal data (not implemented yet).
     Fit(Planned),
-    /// Quantize a float model to a device blob (not implemented yet).
-    Quantize(Planned),
-    /// Run a float model or a blob over data and write outputs (not implemented yet).
-    Run(Planned),
+    /// Import a float model, calibrate it on data and write a device blob (.lwq).
+    Quantize(QuantizeArgs),
+    /// Run a float model or a blob over data step by step and write the outputs as CSV.
+    Run(RunArgs),
     /// Report float vs quantized error on the same data (not implemented yet).
     Report(Planned),
     /// Sweep schemes and options against a budget (not implemented yet).
     Sweep(Planned),
-    /// Show what is in a blob (not implemented yet).
-    Inspect(Planned),
+    /// Show what is in a blob: scheme, shapes, sections, flash, RAM, work per step.
+    Inspect(InspectArgs),
     /// Run the fixed-point anomaly detector and print alarms (not implemented yet).
     Detect(Planned),
-    /// Generate a Rust module embedding a blob (not implemented yet).
-    Codegen(Planned),
+    /// Generate a Rust module embedding a blob in an aligned static, with its sizes as constants.
+    Codegen(CodegenArgs),
     /// Generate the demo scenario's data sets (not implemented yet).
     Simulate(Planned),
     /// Run the quantize-and-compare path on the built-in example.
@@ -64,6 +70,144 @@ enum TableArg {
     Standard,
     /// 304-byte activation table for tight flash (within 7 LSB).
     Compact,
+}
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+enum LayoutArg {
+    /// Lapwing's own names: layers.{k}.w_x, layers.{k}.w_h, layers.{k}.b, head.w, head.b.
+    Lapwing,
+    /// Separate input/recurrent weights and biases: `PREFIX.weight_ih_l{k}`, ... (gates i,f,g,o).
+    Split,
+    /// Kernels [X, 4H], recurrent kernels [H, 4H], one bias (gates i,f,c,o).
+    Fused,
+}
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+enum NormArg {
+    /// Use norm.mean/norm.std from the model file when present.
+    File,
+    /// Standardize with the mean and std of the calibration data.
+    Data,
+    /// No input normalization.
+    None,
+}
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+enum RangeArg {
+    /// Largest magnitude seen (never clips calibration data).
+    Minmax,
+    /// A percentile of the magnitudes (see --percentile): ignores rare outliers.
+    Percentile,
+}
+
+/// How to read a float model file.
+#[derive(clap::Args, Debug)]
+struct ModelArgs {
+    /// Tensor layout of the float model (detected when omitted).
+    #[arg(long, value_enum, help_heading = "Float model")]
+    layout: Option<LayoutArg>,
+    /// Name prefix of the LSTM tensors in the split layout (found when omitted).
+    #[arg(long, help_heading = "Float model")]
+    prefix: Option<String>,
+    /// Name prefix of the dense head's tensors in the split layout (found when omitted).
+    #[arg(long, help_heading = "Float model")]
+    head_prefix: Option<String>,
+    /// Input normalization folded into layer 0 before quantizing.
+    #[arg(long, value_enum, default_value = "file", help_heading = "Float model")]
+    norm: NormArg,
+}
+
+impl ModelArgs {
+    fn import_options(&self) -> ImportOptions {
+        ImportOptions {
+            layout: self.layout.map(|l| match l {
+                LayoutArg::Lapwing => Layout::Lapwing,
+                LayoutArg::Split => Layout::Split,
+                LayoutArg::Fused => Layout::Fused,
+            }),
+            prefix: self.prefix.clone(),
+            head_prefix: self.head_prefix.clone(),
+        }
+    }
+
+    fn norm(&self) -> NormSource {
+        match self.norm {
+            NormArg::File => NormSource::File,
+            NormArg::Data => NormSource::Data,
+            NormArg::None => NormSource::None,
+        }
+    }
+}
+
+/// Options of `quantize`.
+#[derive(clap::Args, Debug)]
+struct QuantizeArgs {
+    /// Float model: .safetensors, .npz, or a directory of .npy files.
+    model: PathBuf,
+    /// Calibration data (normal running): CSV with a header, or .npy [T, X].
+    #[arg(long, help_heading = "Input")]
+    calib: PathBuf,
+    /// Output blob (.lwq), written atomically.
+    #[arg(short, long, help_heading = "Output")]
+    output: PathBuf,
+    #[command(flatten)]
+    model_args: ModelArgs,
+    /// Cell state width.
+    #[arg(long, value_enum, default_value = "c16", help_heading = "Scheme")]
+    cell: CellArg,
+    /// Activation lookup table.
+    #[arg(long, value_enum, default_value = "standard", help_heading = "Scheme")]
+    table: TableArg,
+    /// How ranges are taken from the calibration data.
+    #[arg(long, value_enum, default_value = "minmax", help_heading = "Calibration")]
+    range: RangeArg,
+    /// Percentile of |value| used by --range percentile.
+    #[arg(long, default_value_t = 99.99, help_heading = "Calibration")]
+    percentile: f64,
+    /// Headroom factor above the calibrated range (>= 1).
+    #[arg(long, default_value_t = 1.25, help_heading = "Calibration")]
+    headroom: f32,
+}
+
+/// Options of `run`.
+#[derive(clap::Args, Debug)]
+struct RunArgs {
+    /// A device blob (.lwq) or a float model (.safetensors, .npz, .npy directory).
+    model: PathBuf,
+    /// Input data: CSV with a header, or .npy [T, X].
+    #[arg(long, help_heading = "Input")]
+    data: PathBuf,
+    /// Output CSV, one row per input row (head outputs, or the last hidden state).
+    #[arg(short, long, help_heading = "Output")]
+    output: PathBuf,
+    /// Write the blob's raw int16 outputs instead of real values.
+    #[arg(long, help_heading = "Output")]
+    int: bool,
+    #[command(flatten)]
+    model_args: ModelArgs,
+    /// Data for --norm data (the calibration data the blob was made from).
+    #[arg(long, help_heading = "Float model")]
+    norm_data: Option<PathBuf>,
+}
+
+/// Options of `inspect`.
+#[derive(clap::Args, Debug)]
+struct InspectArgs {
+    /// The blob (.lwq).
+    blob: PathBuf,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Options of `codegen`.
+#[derive(clap::Args, Debug)]
+struct CodegenArgs {
+    /// The blob (.lwq).
+    blob: PathBuf,
+    /// Output Rust module (.rs), written atomically.
+    #[arg(short, long)]
+    output: PathBuf,
 }
 
 /// Options of `demo`.
@@ -100,33 +244,126 @@ fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     };
     match cli.command {
         Command::Fit(_) => planned("fit", "training arrives with the anomaly-detection work"),
-        Command::Quantize(_) => planned("quantize", "the device blob arrives with the model pipeline"),
-        Command::Run(_) => planned("run", "arrives with the model pipeline"),
+        Command::Quantize(args) => quantize_cmd(&args),
+        Command::Run(args) => run_cmd(&args),
         Command::Report(_) => planned("report", "arrives with the error-report work"),
         Command::Sweep(_) => planned("sweep", "arrives with the error-report work"),
-        Command::Inspect(_) => planned("inspect", "arrives with the model pipeline"),
+        Command::Inspect(args) => inspect_cmd(&args),
         Command::Detect(_) => planned("detect", "arrives with the anomaly-detection work"),
-        Command::Codegen(_) => planned("codegen", "arrives with the model pipeline"),
+        Command::Codegen(args) => codegen_cmd(&args),
         Command::Simulate(_) => planned("simulate", "arrives with the anomaly-detection work"),
         Command::Demo(args) => demo(&args),
     }
+}
+
+fn cell_width(c: CellArg) -> CellWidth {
+    match c {
+        CellArg::C16 => CellWidth::C16,
+        CellArg::C32 => CellWidth::C32,
+    }
+}
+
+fn table_kind(t: TableArg) -> TableKind {
+    match t {
+        TableArg::Standard => TableKind::Standard,
+        TableArg::Compact => TableKind::Compact,
+    }
+}
+
+fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
+    let method = match a.range {
+        RangeArg::Minmax => RangeMethod::MinMax,
+        RangeArg::Percentile => RangeMethod::Percentile(a.percentile),
+    };
+    let opts = QuantOptions { cell: cell_width(a.cell), table: table_kind(a.table), headroom: a.headroom };
+    let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), a.model_args.norm(), Some(&a.calib), true)?;
+    println!("{}", prep.imported.summary());
+    if prep.folded.is_some() {
+        println!("input normalization folded into layer 0 ({})", norm_origin(a.model_args.norm(), &a.calib));
+    }
+    let ranges = pipeline::calibrate_file(&prep.model, &a.calib, method, true)?;
+    println!("calibrated on {} rows of {} ({})", ranges.steps, a.calib.display(), range_name(method));
+    let q = quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?;
+    let bytes = encode(&q)?;
+    output::write_atomic(&a.output, &bytes)?;
+    let blob = LoadedBlob::read(&a.output)?;
+    let info = inspect::inspect(&blob.parse()?);
+    let f = &info.footprint;
+    println!(
+        "wrote {}: scheme {} {}, {} B blob + {} B table flash, {} B RAM, {} MACs per step",
+        a.output.display(),
+        info.scheme,
+        info.cell,
+        f.blob_bytes,
+        f.table_bytes,
+        f.ram_bytes,
+        f.macs_per_step
+    );
+    Ok(ExitCode::SUCCESS)
+}
+
+fn norm_origin(n: NormSource, calib: &Path) -> String {
+    match n {
+        NormSource::Data => format!("mean and std of {}", calib.display()),
+        _ => "norm.mean and norm.std from the model file".to_string(),
+    }
+}
+
+fn range_name(m: RangeMethod) -> String {
+    match m {
+        RangeMethod::MinMax => "min/max ranges".to_string(),
+        RangeMethod::Percentile(p) => format!("{p}th-percentile ranges"),
+    }
+}
+
+fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
+    let model = if pipeline::is_blob(&a.model) {
+        Runnable::Blob(LoadedBlob::read(&a.model)?)
+    } else {
+        let norm = a.model_args.norm();
+        if norm == NormSource::Data && a.norm_data.is_none() {
+            anyhow::bail!("--norm data needs --norm-data PATH (the data the normalization was computed from)");
+        }
+        let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), norm, a.norm_data.as_deref(), true)?;
+        Runnable::Float(Box::new(prep))
+    };
+    let values = if a.int { RunValues::Int } else { RunValues::Real };
+    let n = pipeline::run_file(&model, &a.data, &a.output, values, true)?;
+    eprintln!("wrote {} rows to {}", n, a.output.display());
+    Ok(ExitCode::SUCCESS)
+}
+
+fn inspect_cmd(a: &InspectArgs) -> anyhow::Result<ExitCode> {
+    let blob = LoadedBlob::read(&a.blob)?;
+    let info = inspect::inspect(&blob.parse()?);
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&info)?);
+    } else {
+        print!("{}", info.to_text());
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn codegen_cmd(a: &CodegenArgs) -> anyhow::Result<ExitCode> {
+    let blob = LoadedBlob::read(&a.blob)?;
+    let info = inspect::inspect(&blob.parse()?);
+    let name = a.blob.file_name().map_or_else(|| a.blob.display().to_string(), |n| n.to_string_lossy().into_owned());
+    let src = codegen::module(blob.bytes(), &info, &name);
+    output::write_text(&a.output, &src)?;
+    println!(
+        "wrote {} ({} B blob, {} state words)",
+        a.output.display(),
+        info.footprint.blob_bytes,
+        info.footprint.state_words
+    );
+    Ok(ExitCode::SUCCESS)
 }
 
 fn demo(args: &DemoArgs) -> anyhow::Result<ExitCode> {
     if args.steps == 0 {
         anyhow::bail!("--steps must be at least 1");
     }
-    let opts = QuantOptions {
-        cell: match args.cell {
-            CellArg::C16 => CellWidth::C16,
-            CellArg::C32 => CellWidth::C32,
-        },
-        table: match args.table {
-            TableArg::Standard => TableKind::Standard,
-            TableArg::Compact => TableKind::Compact,
-        },
-        ..Default::default()
-    };
+    let opts = QuantOptions { cell: cell_width(args.cell), table: table_kind(args.table), ..Default::default() };
     let summary = example::summarize(&opts, example::CALIB_STEPS, args.steps)?;
     if args.json {
         println!("{}", serde_json::to_string_pretty(&summary)?);

@@ -146,9 +146,9 @@ impl QuantModelData {
             })
             .collect::<Result<Vec<_>>>()?;
         let head = match &self.head {
-            Some(h) => {
-                Some(QHead::new(h.input, h.output, &h.w, &h.bias, h.rq.view()?).map_err(|e| anyhow::anyhow!("head: {e}"))?)
-            }
+            Some(h) => Some(
+                QHead::new(h.input, h.output, &h.w, &h.bias, h.rq.view()?).map_err(|e| anyhow::anyhow!("head: {e}"))?,
+            ),
             None => None,
         };
         QModel::new(&layers, head, self.cell, self.table).map_err(|e| anyhow::anyhow!("model: {e}"))
@@ -156,16 +156,23 @@ impl QuantModelData {
 
     /// Float inputs to device integers: `round(x / s_x)`, saturating.
     pub fn quantize_input(&self, x: &[f32]) -> Vec<i16> {
-        x.iter()
-            .zip(&self.input_scale)
-            .map(|(v, s)| to_fixed_i32((*v / *s) as f64, 0).clamp(i16::MIN as i32, i16::MAX as i32) as i16)
-            .collect()
+        input_to_int(x, &self.input_scale)
     }
 
     /// Device outputs to real values.
     pub fn dequantize_output(&self, y: &[i16]) -> Vec<f32> {
         y.iter().zip(&self.output_scale).map(|(v, s)| *v as f32 * s).collect()
     }
+}
+
+/// Float inputs to device integers: `round(x / scale)` (half away from
+/// zero, in f64), saturated to `int16`. The one conversion every host path
+/// uses, so `run` on a blob and the report agree bit for bit.
+pub fn input_to_int(x: &[f32], scale: &[f32]) -> Vec<i16> {
+    x.iter()
+        .zip(scale)
+        .map(|(v, s)| (*v as f64 / *s as f64).round().clamp(i16::MIN as f64, i16::MAX as f64) as i16)
+        .collect()
 }
 
 /// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`.

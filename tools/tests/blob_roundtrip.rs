@@ -38,7 +38,11 @@ fn small_blob() -> Vec<u8> {
 #[test]
 fn blob_steps_are_bit_identical_to_the_in_memory_model() {
     let specs = [
-        (ModelSpec { input: 4, hidden: 32, layers: 1, output: Some(4), gain: 1.0 }, CellWidth::C16, TableKind::Standard),
+        (
+            ModelSpec { input: 4, hidden: 32, layers: 1, output: Some(4), gain: 1.0 },
+            CellWidth::C16,
+            TableKind::Standard,
+        ),
         (ModelSpec { input: 3, hidden: 8, layers: 2, output: None, gain: 2.0 }, CellWidth::C32, TableKind::Compact),
         (ModelSpec { input: 1, hidden: 5, layers: 3, output: Some(1), gain: 1.5 }, CellWidth::C32, TableKind::Standard),
     ];

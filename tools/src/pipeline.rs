@@ -1,0 +1,209 @@
+//! The data path as the CLI runs it, file to file: import a float model,
+//! fold input normalization, calibrate over a data file (streamed),
+//! quantize, and run a float model or a blob over data.
+//!
+//! Each function takes paths and typed options and returns typed results,
+//! so the CLI stays a thin layer and tests call the same code.
+
+use crate::blob::LoadedBlob;
+use crate::calibrate::{Calibrator, RangeMethod, Ranges};
+use crate::data;
+use crate::float_model::FloatModelData;
+use crate::import::{import, ImportOptions, Imported, Normalization};
+use crate::quantize::input_to_int;
+use anyhow::{bail, Context, Result};
+use std::path::Path;
+
+/// Where the input normalization folded into layer 0 comes from.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum NormSource {
+    /// The model file's `norm.mean`/`norm.std` when present, else none.
+    #[default]
+    File,
+    /// Mean and standard deviation of the calibration data, per feature
+    /// (for a model trained on standardized inputs).
+    Data,
+    /// No normalization, even if the file has one.
+    None,
+}
+
+/// Per-feature mean and (population) standard deviation of a data file,
+/// streamed in one pass (Welford's algorithm, in f64).
+///
+/// # Errors
+/// Read errors, or a feature whose spread is zero (it cannot be
+/// standardized).
+pub fn data_normalization(path: &Path, progress: bool) -> Result<Normalization> {
+    let mut n = 0f64;
+    let mut mean: Vec<f64> = Vec::new();
+    let mut m2: Vec<f64> = Vec::new();
+    let columns = data::for_each_row(path, progress, |_, x, _| {
+        if mean.is_empty() {
+            mean = vec![0.0; x.len()];
+            m2 = vec![0.0; x.len()];
+        }
+        n += 1.0;
+        for ((m, s), v) in mean.iter_mut().zip(m2.iter_mut()).zip(x) {
+            let d = *v as f64 - *m;
+            *m += d / n;
+            *s += d * (*v as f64 - *m);
+        }
+        Ok(())
+    })?;
+    if n < 2.0 {
+        bail!("{}: needs at least 2 rows to estimate the input normalization", path.display());
+    }
+    let std: Vec<f32> = m2.iter().map(|s| (s / n).sqrt() as f32).collect();
+    if let Some(i) = std.iter().position(|s| !(*s > 0.0 && s.is_finite())) {
+        let name = columns.get(i).map_or("?", String::as_str);
+        bail!("{}: column {} (\"{name}\") is constant, so it cannot be standardized", path.display(), i + 1);
+    }
+    Ok(Normalization { mean: mean.iter().map(|m| *m as f32).collect(), std })
+}
+
+/// A float model ready to calibrate: imported, normalization folded in.
+#[derive(Clone, Debug)]
+pub struct Prepared {
+    /// What the importer found.
+    pub imported: Imported,
+    /// The model taking raw inputs.
+    pub model: FloatModelData,
+    /// The normalization that was folded in, if any.
+    pub folded: Option<Normalization>,
+}
+
+/// Imports `model_path` and folds the normalization chosen by `norm`
+/// (`data_path` is read when `norm` is [`NormSource::Data`]).
+///
+/// # Errors
+/// Import errors, normalization errors, or [`NormSource::Data`] without a
+/// data file.
+pub fn prepare(
+    model_path: &Path,
+    opts: &ImportOptions,
+    norm: NormSource,
+    data_path: Option<&Path>,
+    progress: bool,
+) -> Result<Prepared> {
+    let imported = import(model_path, opts)?;
+    let folded = match norm {
+        NormSource::None => None,
+        NormSource::File => imported.norm.clone(),
+        NormSource::Data => {
+            let Some(p) = data_path else { bail!("normalization from data needs a data file") };
+            Some(data_normalization(p, progress)?)
+        }
+    };
+    let mut model = imported.model.clone();
+    if let Some(n) = &folded {
+        model
+            .fold_normalization(&n.mean, &n.std)
+            .with_context(|| format!("{}: input normalization", model_path.display()))?;
+    }
+    Ok(Prepared { imported, model, folded })
+}
+
+/// Runs the float model over a data file (streamed, state carried across
+/// rows) and returns the ranges by `method`.
+///
+/// # Errors
+/// Data errors (named by file, line and column), a feature-count
+/// mismatch, or empty data.
+pub fn calibrate_file(model: &FloatModelData, path: &Path, method: RangeMethod, progress: bool) -> Result<Ranges> {
+    let mut cal = Calibrator::new(model, method)?;
+    let want = model.input_len();
+    data::for_each_row(path, progress, |_, x, _| {
+        if x.len() != want {
+            bail!("has {} feature columns but the model takes {want} inputs", x.len());
+        }
+        cal.push(x)
+    })?;
+    cal.finish().with_context(|| format!("{}: calibration", path.display()))
+}
+
+/// A model `run` can execute.
+pub enum Runnable {
+    /// The float reference.
+    Float(Box<Prepared>),
+    /// A device blob, run by the core's device code.
+    Blob(LoadedBlob),
+}
+
+/// True when the file starts with the blob magic.
+pub fn is_blob(path: &Path) -> bool {
+    use std::io::Read;
+    let mut magic = [0u8; 4];
+    std::fs::File::open(path).and_then(|mut f| f.read_exact(&mut magic)).is_ok() && magic == lapwing::model::MAGIC
+}
+
+/// How `run` writes values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub enum RunValues {
+    /// Real values (device integers times their scale for a blob).
+    #[default]
+    Real,
+    /// The device's raw `int16` outputs (blobs only), for bit-exact checks.
+    Int,
+}
+
+/// Output column names: `y0..` for a head, `h0..` for the last hidden state.
+fn output_columns(has_head: bool, n: usize) -> Vec<String> {
+    let p = if has_head { "y" } else { "h" };
+    (0..n).map(|i| format!("{p}{i}")).collect()
+}
+
+/// Runs `model` over `data_path` step by step and writes one CSV row per
+/// input row to `out_path` (atomically). Returns the rows written.
+///
+/// # Errors
+/// Data errors, a feature-count mismatch, [`RunValues::Int`] on a float
+/// model, or an output error. Nothing is written on error.
+pub fn run_file(
+    model: &Runnable,
+    data_path: &Path,
+    out_path: &Path,
+    values: RunValues,
+    progress: bool,
+) -> Result<usize> {
+    let mut rows: Vec<Vec<f32>> = Vec::new();
+    let header = match model {
+        Runnable::Float(p) => {
+            if values == RunValues::Int {
+                bail!("integer output needs a quantized blob, not a float model");
+            }
+            let m = p.model.view()?;
+            let mut state = vec![0.0f32; m.state_len()];
+            let mut out = vec![0.0f32; m.output_len()];
+            data::for_each_row(data_path, progress, |_, x, _| {
+                if x.len() != m.input_len() {
+                    bail!("has {} feature columns but the model takes {} inputs", x.len(), m.input_len());
+                }
+                m.step(&mut state, x, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
+                rows.push(out.clone());
+                Ok(())
+            })?;
+            output_columns(p.model.head.is_some(), m.output_len())
+        }
+        Runnable::Blob(b) => {
+            let blob = b.parse()?;
+            let m = blob.model();
+            let mut state = vec![0i16; m.state_words()];
+            let mut out = vec![0i16; m.output_len()];
+            data::for_each_row(data_path, progress, |_, x, _| {
+                if x.len() != m.input_len() {
+                    bail!("has {} feature columns but the model takes {} inputs", x.len(), m.input_len());
+                }
+                let xi = input_to_int(x, blob.input_scale());
+                m.step(&mut state, &xi, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
+                rows.push(match values {
+                    RunValues::Real => out.iter().zip(blob.output_scale()).map(|(v, s)| *v as f32 * s).collect(),
+                    RunValues::Int => out.iter().map(|v| *v as f32).collect(),
+                });
+                Ok(())
+            })?;
+            output_columns(blob.header().has_head, m.output_len())
+        }
+    };
+    data::write_csv(out_path, &header, &rows)?;
+    Ok(rows.len())
+}
