@@ -180,33 +180,76 @@ pub fn read(path: &Path, progress: bool) -> Result<Dataset> {
 /// destination directory that does not exist (named in the message), or an
 /// I/O error while writing or renaming.
 pub fn write_csv(path: &Path, header: &[String], rows: impl IntoIterator<Item = impl AsRef<[f32]>>) -> Result<()> {
-    let name = path.display();
+    write_csv_streaming(path, header, |sink| {
+        for row in rows {
+            sink.push(row.as_ref())?;
+        }
+        Ok(())
+    })
+    .map(|_| ())
+}
+
+/// Receives rows for [`write_csv_streaming`].
+pub struct CsvSink<'a> {
+    w: csv::Writer<&'a std::fs::File>,
+    name: String,
+    cols: usize,
+    rows: usize,
+    text: String,
+}
+
+impl CsvSink<'_> {
+    /// Writes one row.
+    ///
+    /// # Errors
+    /// A row whose length differs from the header's, or an I/O error.
+    pub fn push(&mut self, row: &[f32]) -> Result<()> {
+        let name = &self.name;
+        if row.len() != self.cols {
+            bail!(
+                "cannot write {name}: row {} has {} but the header has {}",
+                self.rows,
+                count(row.len(), "value", "values"),
+                count(self.cols, "column", "columns")
+            );
+        }
+        for v in row {
+            self.text.clear();
+            let _ = write!(self.text, "{v}");
+            self.w.write_field(&self.text).with_context(|| format!("cannot write {name}"))?;
+        }
+        self.w.write_record(None::<&[u8]>).with_context(|| format!("cannot write {name}"))?;
+        self.rows += 1;
+        Ok(())
+    }
+}
+
+/// As [`write_csv`], but rows are produced by `produce` one at a time (so
+/// a long run never holds its output in memory). Returns the rows written.
+/// If `produce` fails, nothing is written.
+///
+/// # Errors
+/// As [`write_csv`], and any error from `produce`.
+pub fn write_csv_streaming(
+    path: &Path,
+    header: &[String],
+    produce: impl FnOnce(&mut CsvSink<'_>) -> Result<()>,
+) -> Result<usize> {
+    let name = path.display().to_string();
     if header.is_empty() {
         bail!("cannot write {name}: no columns to write");
     }
+    let mut written = 0;
     crate::output::write_atomic_with(path, |file| {
         let mut w = csv::Writer::from_writer(file);
         w.write_record(header).with_context(|| format!("cannot write {name}"))?;
-        let mut text = String::new();
-        for (i, row) in rows.into_iter().enumerate() {
-            let row = row.as_ref();
-            if row.len() != header.len() {
-                bail!(
-                    "cannot write {name}: row {i} has {} but the header has {}",
-                    count(row.len(), "value", "values"),
-                    count(header.len(), "column", "columns")
-                );
-            }
-            for v in row {
-                text.clear();
-                let _ = write!(text, "{v}");
-                w.write_field(&text).with_context(|| format!("cannot write {name}"))?;
-            }
-            w.write_record(None::<&[u8]>).with_context(|| format!("cannot write {name}"))?;
-        }
-        w.flush().with_context(|| format!("cannot write {name}"))?;
+        let mut sink = CsvSink { w, name: name.clone(), cols: header.len(), rows: 0, text: String::new() };
+        produce(&mut sink)?;
+        sink.w.flush().with_context(|| format!("cannot write {name}"))?;
+        written = sink.rows;
         Ok(())
-    })
+    })?;
+    Ok(written)
 }
 
 /// The input kinds, chosen by extension.

@@ -153,7 +153,8 @@ fn output_columns(has_head: bool, n: usize) -> Vec<String> {
 }
 
 /// Runs `model` over `data_path` step by step and writes one CSV row per
-/// input row to `out_path` (atomically). Returns the rows written.
+/// input row to `out_path` (atomically, streamed: neither the input nor the
+/// output is held in memory). Returns the rows written.
 ///
 /// # Errors
 /// Data errors, a feature-count mismatch, [`RunValues::Int`] on a float
@@ -165,8 +166,13 @@ pub fn run_file(
     values: RunValues,
     progress: bool,
 ) -> Result<usize> {
-    let mut rows: Vec<Vec<f32>> = Vec::new();
-    let header = match model {
+    let check = |got: usize, want: usize| -> Result<()> {
+        if got != want {
+            bail!("has {got} feature columns but the model takes {want} inputs");
+        }
+        Ok(())
+    };
+    match model {
         Runnable::Float(p) => {
             if values == RunValues::Int {
                 bail!("integer output needs a quantized blob, not a float model");
@@ -174,36 +180,38 @@ pub fn run_file(
             let m = p.model.view()?;
             let mut state = vec![0.0f32; m.state_len()];
             let mut out = vec![0.0f32; m.output_len()];
-            data::for_each_row(data_path, progress, |_, x, _| {
-                if x.len() != m.input_len() {
-                    bail!("has {} feature columns but the model takes {} inputs", x.len(), m.input_len());
-                }
-                m.step(&mut state, x, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
-                rows.push(out.clone());
-                Ok(())
-            })?;
-            output_columns(p.model.head.is_some(), m.output_len())
+            let header = output_columns(p.model.head.is_some(), m.output_len());
+            data::write_csv_streaming(out_path, &header, |sink| {
+                data::for_each_row(data_path, progress, |_, x, _| {
+                    check(x.len(), m.input_len())?;
+                    m.step(&mut state, x, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
+                    sink.push(&out)
+                })
+                .map(|_| ())
+            })
         }
         Runnable::Blob(b) => {
             let blob = b.parse()?;
             let m = blob.model();
             let mut state = vec![0i16; m.state_words()];
             let mut out = vec![0i16; m.output_len()];
-            data::for_each_row(data_path, progress, |_, x, _| {
-                if x.len() != m.input_len() {
-                    bail!("has {} feature columns but the model takes {} inputs", x.len(), m.input_len());
-                }
-                let xi = input_to_int(x, blob.input_scale());
-                m.step(&mut state, &xi, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
-                rows.push(match values {
-                    RunValues::Real => out.iter().zip(blob.output_scale()).map(|(v, s)| *v as f32 * s).collect(),
-                    RunValues::Int => out.iter().map(|v| *v as f32).collect(),
-                });
-                Ok(())
-            })?;
-            output_columns(blob.header().has_head, m.output_len())
+            let mut row = vec![0.0f32; m.output_len()];
+            let header = output_columns(blob.header().has_head, m.output_len());
+            data::write_csv_streaming(out_path, &header, |sink| {
+                data::for_each_row(data_path, progress, |_, x, _| {
+                    check(x.len(), m.input_len())?;
+                    let xi = input_to_int(x, blob.input_scale());
+                    m.step(&mut state, &xi, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
+                    for ((r, v), s) in row.iter_mut().zip(&out).zip(blob.output_scale()) {
+                        *r = match values {
+                            RunValues::Real => *v as f32 * s,
+                            RunValues::Int => *v as f32,
+                        };
+                    }
+                    sink.push(&row)
+                })
+                .map(|_| ())
+            })
         }
-    };
-    data::write_csv(out_path, &header, &rows)?;
-    Ok(rows.len())
+    }
 }
