@@ -18,6 +18,7 @@
 //! computes.
 
 pub mod blob;
+pub mod budget;
 pub mod calibrate;
 pub mod codegen;
 pub mod compare;
@@ -29,5 +30,7 @@ pub mod inspect;
 pub mod metrics;
 pub mod output;
 pub mod pipeline;
+pub mod plot;
 pub mod quantize;
+pub mod report;
 pub mod synth;

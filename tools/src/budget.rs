@@ -1,0 +1,1 @@
+//! Error budget (being written).
