@@ -6,7 +6,7 @@
 //! integrates its input); real models come from the `lapwing` host tool.
 
 use lapwing::activation::{TableKind, PRE_FRAC};
-use lapwing::quant::{CellWidth, QLayer, QModel, RowScales, StateBuf};
+use lapwing::quant::{CellWidth, QLayer, QModel, RowScales, Scheme, StateBuf, Weights};
 
 // One input, one unit. Rows: i, f, g, o. Weights int8 per row.
 static W_X: [i8; 4] = [0, 0, 127, 0];
@@ -23,8 +23,8 @@ static RQ_H_SHIFT: [i8; 4] = [0; 4];
 fn main() -> Result<(), lapwing::Error> {
     let rq_x = RowScales::new(&RQ_X_MULT, &RQ_X_SHIFT)?;
     let rq_h = RowScales::new(&RQ_H_MULT, &RQ_H_SHIFT)?;
-    let layer = QLayer::new(1, 1, &W_X, &W_H, &BIAS, rq_x, rq_h, 13)?;
-    let model = QModel::new(&[layer], None, CellWidth::C16, TableKind::Standard)?;
+    let layer = QLayer::new(1, 1, Weights::I8(&W_X), Weights::I8(&W_H), &BIAS, rq_x, rq_h, 13)?;
+    let model = QModel::new(&[layer], None, Scheme::W8A16, CellWidth::C16, TableKind::Standard)?;
     let mut state: StateBuf<8> = StateBuf::new();
     let words = model.state_words();
     let state = state.words_mut(words).ok_or(lapwing::Error::StateSize { expected: words, got: 8 })?;

@@ -16,14 +16,14 @@
 //!   every check done up front.
 //!
 //! ```
-//! use lapwing::quant::{CellWidth, QLayer, QModel, RowScales};
+//! use lapwing::quant::{CellWidth, QLayer, QModel, RowScales, Scheme, Weights};
 //! use lapwing::activation::TableKind;
 //! # fn main() -> Result<(), lapwing::Error> {
 //! // A one-unit layer with all-zero weights and biases: h stays 0.
 //! let (w_x, w_h, bias) = ([0i8; 4], [0i8; 4], [0i32; 4]);
 //! let rq = RowScales::new(&[1 << 30; 4], &[0; 4])?;
-//! let layer = QLayer::new(1, 1, &w_x, &w_h, &bias, rq, rq, 13)?;
-//! let model = QModel::new(&[layer], None, CellWidth::C16, TableKind::Standard)?;
+//! let layer = QLayer::new(1, 1, Weights::I8(&w_x), Weights::I8(&w_h), &bias, rq, rq, 13)?;
+//! let model = QModel::new(&[layer], None, Scheme::W8A16, CellWidth::C16, TableKind::Standard)?;
 //! let mut state = [0i16; 3];
 //! let mut out = [0i16; 1];
 //! model.step(&mut state, &[1000], &mut out)?;

@@ -7,7 +7,7 @@
 //!      0     4  magic "LPWQ"
 //!      4     2  format version (1)
 //!      6     2  header length (32)
-//!      8     1  scheme (0 = w8a16)
+//!      8     1  scheme (0 = w8a16, 1 = w8a8, 2 = w16a16)
 //!      9     1  cell width (0 = c16, 1 = c32)
 //!     10     1  activation table (0 = standard, 1 = compact)
 //!     11     1  layer count (1..=MAX_LAYERS)
@@ -26,7 +26,8 @@
 //!               gaps zero-filled
 //!    end-4   4  CRC-32/ISO-HDLC of every byte before it
 //! ```
-//! Element types: 1 = i8, 3 = i32, 4 = f32. Section kinds are listed in
+//! Element types: 1 = i8, 2 = i16, 3 = i32, 4 = f32. Weight sections are
+//! i8, or i16 for `w16a16`. Section kinds are listed in
 //! [`SectionKind`]; every layer has all seven layer sections, the head
 //! sections appear exactly when the head flag is set, and the two scale
 //! sections always. The blob must start at a 4-byte aligned address (the
@@ -43,7 +44,8 @@
 //! After it succeeds, a step can fail only on the caller's buffer lengths.
 
 use crate::activation::TableKind;
-use crate::quant::{state_words_for, CellWidth, QHead, QLayer, QModel, RowScales};
+pub use crate::quant::Scheme;
+use crate::quant::{state_words_for, CellWidth, QHead, QLayer, QModel, RowScales, Weights};
 use crate::{Error, MAX_LAYERS};
 
 /// The four magic bytes at the start of every blob.
@@ -63,37 +65,14 @@ pub const MAX_DIM: u32 = 1 << 16;
 /// table-less form to keep flash small; parsing is done once at start-up.
 pub const CRC: crc::Crc<u32, crc::NoTable> = crc::Crc::<u32, crc::NoTable>::new(&crc::CRC_32_ISO_HDLC);
 
-/// Integer scheme of a blob.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
-#[repr(u8)]
-pub enum Scheme {
-    /// int8 weights, int16 activations and hidden state.
-    W8A16 = 0,
-}
-
-impl Scheme {
-    /// From the header byte.
-    pub fn from_u8(v: u8) -> Option<Scheme> {
-        match v {
-            0 => Some(Scheme::W8A16),
-            _ => None,
-        }
-    }
-
-    /// The scheme's name, e.g. `w8a16`.
-    pub fn name(self) -> &'static str {
-        match self {
-            Scheme::W8A16 => "w8a16",
-        }
-    }
-}
-
 /// Element type of a section.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 #[repr(u8)]
 pub enum ElemType {
     /// Signed byte.
     I8 = 1,
+    /// Signed 16-bit integer.
+    I16 = 2,
     /// Signed 32-bit integer.
     I32 = 3,
     /// IEEE 754 single (scales for the host; the device step never reads them).
@@ -105,6 +84,7 @@ impl ElemType {
     pub const fn size(self) -> usize {
         match self {
             ElemType::I8 => 1,
+            ElemType::I16 => 2,
             ElemType::I32 | ElemType::F32 => 4,
         }
     }
@@ -113,6 +93,7 @@ impl ElemType {
     pub fn name(self) -> &'static str {
         match self {
             ElemType::I8 => "i8",
+            ElemType::I16 => "i16",
             ElemType::I32 => "i32",
             ElemType::F32 => "f32",
         }
@@ -126,9 +107,9 @@ impl ElemType {
 pub enum SectionKind {
     /// `[1, 4]` i32: input X, hidden H, cell fractional bits, 0.
     LayerInfo = 1,
-    /// `[4H, X]` i8 input weights, gates `i, f, g, o`.
+    /// `[4H, X]` input weights (i8, or i16 for `w16a16`), gates `i, f, g, o`.
     LayerWx = 2,
-    /// `[4H, H]` i8 recurrent weights.
+    /// `[4H, H]` recurrent weights (i8, or i16 for `w16a16`).
     LayerWh = 3,
     /// `[4H, 1]` i32 bias in pre-activation units.
     LayerBias = 4,
@@ -140,7 +121,7 @@ pub enum SectionKind {
     LayerRqHMult = 7,
     /// `[4H, 1]` i8 shifts of the recurrent accumulators.
     LayerRqHShift = 8,
-    /// `[Y, H]` i8 head weights.
+    /// `[Y, H]` head weights (i8, or i16 for `w16a16`).
     HeadW = 16,
     /// `[Y, 1]` i32 head bias in output units.
     HeadBias = 17,
@@ -183,10 +164,11 @@ impl SectionKind {
             .find(|k| *k as u8 == v)
     }
 
-    /// The element type this kind must have.
-    pub fn elem(self) -> ElemType {
+    /// The element type this kind must have in a blob of `scheme`.
+    pub fn elem(self, scheme: Scheme) -> ElemType {
         use SectionKind::*;
         match self {
+            LayerWx | LayerWh | HeadW if scheme == Scheme::W16A16 => ElemType::I16,
             LayerWx | LayerWh | LayerRqXShift | LayerRqHShift | HeadW | HeadRqShift => ElemType::I8,
             LayerInfo | LayerBias | LayerRqXMult | LayerRqHMult | HeadBias | HeadRqMult => ElemType::I32,
             InputScale | OutputScale => ElemType::F32,
@@ -468,7 +450,7 @@ pub fn parse_header(bytes: &[u8]) -> Result<Header, BlobError> {
 }
 
 /// Decodes section-table entry `index` of a blob whose header was checked.
-fn read_entry(bytes: &[u8], index: usize) -> Result<SectionInfo, BlobError> {
+fn read_entry(bytes: &[u8], index: usize, scheme: Scheme) -> Result<SectionInfo, BlobError> {
     let at = HEADER_LEN + index * ENTRY_LEN;
     let short = BlobError::TooShort { need: at + ENTRY_LEN, got: bytes.len() };
     let e = bytes.get(at..at + ENTRY_LEN).ok_or(short)?;
@@ -477,11 +459,12 @@ fn read_entry(bytes: &[u8], index: usize) -> Result<SectionInfo, BlobError> {
     let layer = rd_u8(e, 1).ok_or(short)?;
     let elem = match rd_u8(e, 2).ok_or(short)? {
         1 => ElemType::I8,
+        2 => ElemType::I16,
         3 => ElemType::I32,
         4 => ElemType::F32,
         _ => return Err(problem("unknown element type")),
     };
-    if elem != kind.elem() {
+    if elem != kind.elem(scheme) {
         return Err(problem("element type does not match the section kind"));
     }
     if rd_u8(e, 3) != Some(0) {
@@ -544,6 +527,25 @@ impl<'a> Found<'a> {
     fn i8s(&self, kind: SectionKind, layer: u8, rows: u32, cols: u32) -> Result<&'a [i8], BlobError> {
         let p = self.dims(kind, layer, rows, cols)?;
         bytemuck::try_cast_slice(p).map_err(|_| BlobError::Misaligned)
+    }
+
+    fn i16s(&self, kind: SectionKind, layer: u8, rows: u32, cols: u32) -> Result<&'a [i16], BlobError> {
+        let p = self.dims(kind, layer, rows, cols)?;
+        bytemuck::try_cast_slice(p).map_err(|_| BlobError::Misaligned)
+    }
+
+    fn weights(
+        &self,
+        scheme: Scheme,
+        kind: SectionKind,
+        layer: u8,
+        rows: u32,
+        cols: u32,
+    ) -> Result<Weights<'a>, BlobError> {
+        Ok(match scheme {
+            Scheme::W16A16 => Weights::I16(self.i16s(kind, layer, rows, cols)?),
+            Scheme::W8A16 | Scheme::W8A8 => Weights::I8(self.i8s(kind, layer, rows, cols)?),
+        })
     }
 
     fn i32s(&self, kind: SectionKind, layer: u8, rows: u32, cols: u32) -> Result<&'a [i32], BlobError> {
@@ -628,7 +630,7 @@ impl<'a> Blob<'a> {
         let mut found = Found { bytes, entries: [None; MAX_SECTIONS] };
         let mut end = data_start;
         for index in 0..n {
-            let info = read_entry(bytes, index)?;
+            let info = read_entry(bytes, index, header.scheme)?;
             let problem = |problem: &'static str| BlobError::Section { index, problem };
             let start = info.offset as usize;
             if start < end {
@@ -684,8 +686,8 @@ impl<'a> Blob<'a> {
             }
             let (xu, hu) = (x as u32, h as u32);
             let rows = 4 * hu;
-            let w_x = found.i8s(SectionKind::LayerWx, k, rows, xu)?;
-            let w_h = found.i8s(SectionKind::LayerWh, k, rows, hu)?;
+            let w_x = found.weights(header.scheme, SectionKind::LayerWx, k, rows, xu)?;
+            let w_h = found.weights(header.scheme, SectionKind::LayerWh, k, rows, hu)?;
             let bias = found.i32s(SectionKind::LayerBias, k, rows, 1)?;
             let rq_x = scales(&found, SectionKind::LayerRqXMult, SectionKind::LayerRqXShift, k, rows)?;
             let rq_h = scales(&found, SectionKind::LayerRqHMult, SectionKind::LayerRqHShift, k, rows)?;
@@ -695,7 +697,7 @@ impl<'a> Blob<'a> {
         }
         let out = header.output as u32;
         let head = if header.has_head {
-            let w = found.i8s(SectionKind::HeadW, 0, out, prev)?;
+            let w = found.weights(header.scheme, SectionKind::HeadW, 0, out, prev)?;
             let bias = found.i32s(SectionKind::HeadBias, 0, out, 1)?;
             let rq = scales(&found, SectionKind::HeadRqMult, SectionKind::HeadRqShift, 0, out)?;
             Some(QHead::new(prev as usize, out as usize, w, bias, rq)?)
@@ -709,8 +711,8 @@ impl<'a> Blob<'a> {
         };
         let input_scale = found.f32s(SectionKind::InputScale, header.input as u32)?;
         let output_scale = found.f32s(SectionKind::OutputScale, out)?;
-        let model = QModel::new(&layers, head, header.cell, header.table)?;
-        let words = state_words_for(layers.iter().map(|l| l.hidden()), header.cell);
+        let model = QModel::new(&layers, head, header.scheme, header.cell, header.table)?;
+        let words = state_words_for(layers.iter().map(|l| l.hidden()), header.scheme, header.cell);
         if words != header.state_words as usize {
             return Err(BlobError::Dims { what: "state words", expected: words as u32, got: header.state_words }.into());
         }
@@ -752,7 +754,8 @@ impl<'a> Blob<'a> {
     /// The section table entries, in order.
     pub fn sections(&self) -> impl Iterator<Item = SectionInfo> + 'a {
         let bytes = self.bytes;
-        (0..self.header.sections as usize).filter_map(move |i| read_entry(bytes, i).ok())
+        let scheme = self.header.scheme;
+        (0..self.header.sections as usize).filter_map(move |i| read_entry(bytes, i, scheme).ok())
     }
 }
 

@@ -1,4 +1,17 @@
-//! The integer-only LSTM step, scheme `w8a16`.
+//! The integer-only LSTM step, for every scheme.
+//!
+//! # Schemes
+//! | scheme | weights | hidden state `h` | input `x` |
+//! |---|---|---|---|
+//! | `w8a16` (default) | int8 | int16 Q0.15 | int16 |
+//! | `w8a8` (least RAM) | int8 | int8 Q0.7 | int16 |
+//! | `w16a16` (highest fidelity) | int16 | int16 Q0.15 | int16 |
+//!
+//! One step function serves all three (generic over the weight and hidden
+//! element types); everything below holds for each, with "int16 Q0.15"
+//! reading "int8 Q0.7" for the `w8a8` hidden state. The input stays int16
+//! in `w8a8`: it is transient, so 8 bits there would cost accuracy and save
+//! no RAM.
 //!
 //! # Numeric contract (DESIGN.md section 3)
 //! - **Weights**: `int8`, symmetric, one scale per row (per gate output
@@ -9,8 +22,11 @@
 //! - **Hidden** `h`: `int16` Q0.15.
 //! - **Gate pre-activation**: `i32` with 19 fractional bits
 //!   ([`crate::activation::PRE_FRAC`]). The two dot products
-//!   `acc_x = Wx·x` and `acc_h = Wh·h` are exact in `i32` (the constructor
-//!   proves no row can overflow for any input) and are requantized
+//!   `acc_x = Wx·x` and `acc_h = Wh·h` are exact: in `i32` for int8 weights
+//!   (the constructor proves no row can overflow for any input), in `i64`
+//!   for int16 weights, which are first brought into `i32` by a per-matrix
+//!   rounding right shift just large enough for the worst row (computed by
+//!   the constructor, so it never needs storing). They are requantized
 //!   separately with per-row (multiplier, shift) pairs, then summed with the
 //!   `i32` bias, saturating.
 //! - **Gate outputs**: Q0.31 from the lookup tables. A saturated forget gate
@@ -33,15 +49,17 @@
 //!
 //! # State
 //! Caller-owned `i16` words, [`QModel::state_words`] of them: per layer
-//! `h[H]` then the cell (`H` words for `c16`, `2H` for `c32`, each value as
-//! low then high half), then `H_max` words of scratch. All zero is the
-//! usual initial state. [`StateBuf`] gives a fixed-capacity buffer that fits
+//! `h[H]` (`ceil(H/2)` words holding two int8 values each for `w8a8`) then
+//! the cell (`H` words for `c16`, `2H` for `c32`, each value as low then
+//! high half), then scratch for one layer's new `h`. All zero is the usual
+//! initial state. [`StateBuf`] gives a fixed-capacity buffer that fits
 //! in a `static`.
 
 use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
 use crate::fixed_point::{mul_q31, round_shr, sat_i16, shift_signed, Requant};
 use crate::float::{check_len, dim_mul};
 use crate::{stack_layers, Error, Probe, MAX_LAYERS};
+use bytemuck::Pod;
 use heapless::Vec as HVec;
 
 /// Width of the stored cell state.
@@ -84,17 +102,204 @@ impl CellWidth {
 /// accumulator bound.
 const ACT_MAX: i64 = 32_768;
 
+/// Integer scheme: weight and hidden-state widths.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+#[repr(u8)]
+pub enum Scheme {
+    /// int8 weights, int16 hidden state.
+    W8A16 = 0,
+    /// int8 weights, int8 hidden state (least RAM).
+    W8A8 = 1,
+    /// int16 weights, int16 hidden state (highest fidelity).
+    W16A16 = 2,
+}
+
+impl Scheme {
+    /// Every scheme, smallest flash first.
+    pub const ALL: [Scheme; 3] = [Scheme::W8A8, Scheme::W8A16, Scheme::W16A16];
+
+    /// From its code (the blob header byte).
+    pub fn from_u8(v: u8) -> Option<Scheme> {
+        Scheme::ALL.into_iter().find(|s| *s as u8 == v)
+    }
+
+    /// The name (`w8a16`, `w8a8`, `w16a16`).
+    pub fn name(self) -> &'static str {
+        match self {
+            Scheme::W8A16 => "w8a16",
+            Scheme::W8A8 => "w8a8",
+            Scheme::W16A16 => "w16a16",
+        }
+    }
+
+    /// Bytes per weight.
+    pub const fn weight_bytes(self) -> usize {
+        match self {
+            Scheme::W8A16 | Scheme::W8A8 => 1,
+            Scheme::W16A16 => 2,
+        }
+    }
+
+    /// Largest weight magnitude (symmetric range).
+    pub const fn weight_max(self) -> i32 {
+        match self {
+            Scheme::W8A16 | Scheme::W8A8 => 127,
+            Scheme::W16A16 => 32_767,
+        }
+    }
+
+    /// Fractional bits of the hidden state (15 for Q0.15, 7 for Q0.7).
+    pub const fn hidden_frac(self) -> u32 {
+        match self {
+            Scheme::W8A16 | Scheme::W16A16 => 15,
+            Scheme::W8A8 => 7,
+        }
+    }
+
+    /// `i16` words holding `n` hidden values.
+    pub const fn hidden_words(self, n: usize) -> usize {
+        match self {
+            Scheme::W8A16 | Scheme::W16A16 => n,
+            Scheme::W8A8 => n.div_ceil(2),
+        }
+    }
+}
+
+/// A weight matrix, borrowed; the element type follows the scheme.
+#[derive(Clone, Copy, Debug)]
+pub enum Weights<'a> {
+    /// int8 weights (`w8a16`, `w8a8`).
+    I8(&'a [i8]),
+    /// int16 weights (`w16a16`).
+    I16(&'a [i16]),
+}
+
+impl Weights<'_> {
+    /// Number of weights.
+    pub fn len(&self) -> usize {
+        match self {
+            Weights::I8(w) => w.len(),
+            Weights::I16(w) => w.len(),
+        }
+    }
+
+    /// True when empty.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Bytes as stored.
+    pub fn bytes(&self) -> usize {
+        match self {
+            Weights::I8(w) => w.len(),
+            Weights::I16(w) => 2 * w.len(),
+        }
+    }
+
+    fn is_i16(&self) -> bool {
+        matches!(self, Weights::I16(_))
+    }
+}
+
+/// An integer element of weights or activations.
+trait Elem: Copy + Pod + Default {
+    fn widen(self) -> i32;
+}
+
+impl Elem for i8 {
+    #[inline(always)]
+    fn widen(self) -> i32 {
+        self as i32
+    }
+}
+
+impl Elem for i16 {
+    #[inline(always)]
+    fn widen(self) -> i32 {
+        self as i32
+    }
+}
+
+/// A weight element with its exact dot product.
+trait Weight: Elem {
+    /// Exact `sum w[i] * v[i]`.
+    fn dot<A: Elem>(w: &[Self], v: &[A]) -> i64;
+    /// The slice when `w` holds this type (validated by [`QModel::new`]),
+    /// else empty.
+    fn slice(w: Weights<'_>) -> &[Self];
+}
+
+impl Weight for i8 {
+    /// Accumulates in `i32`: the constructors prove `sum |w| * 32768` fits,
+    /// so no row can overflow; `wrapping_add` only avoids a debug panic path.
+    #[inline]
+    fn dot<A: Elem>(w: &[i8], v: &[A]) -> i64 {
+        w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(a.widen() * b.widen())) as i64
+    }
+    fn slice(w: Weights<'_>) -> &[i8] {
+        match w {
+            Weights::I8(w) => w,
+            Weights::I16(_) => &[],
+        }
+    }
+}
+
+impl Weight for i16 {
+    /// Accumulates in `i64`: each product is below `2^30` and rows are at
+    /// most `2^16` long, so the sum stays below `2^46`.
+    #[inline]
+    fn dot<A: Elem>(w: &[i16], v: &[A]) -> i64 {
+        w.iter().zip(v).fold(0i64, |acc, (a, b)| acc.wrapping_add((a.widen() * b.widen()) as i64))
+    }
+    fn slice(w: Weights<'_>) -> &[i16] {
+        match w {
+            Weights::I16(w) => w,
+            Weights::I8(_) => &[],
+        }
+    }
+}
+
+/// A hidden-state element: its format and the hidden update's rounding.
+trait Hidden: Elem {
+    /// Fractional bits.
+    const FRAC: u32;
+    /// Largest magnitude (the clamp is symmetric).
+    const MAX: i32;
+    fn from_i32(v: i32) -> Self;
+}
+
+impl Hidden for i16 {
+    const FRAC: u32 = 15;
+    const MAX: i32 = i16::MAX as i32;
+    #[inline(always)]
+    fn from_i32(v: i32) -> Self {
+        v as i16
+    }
+}
+
+impl Hidden for i8 {
+    const FRAC: u32 = 7;
+    const MAX: i32 = i8::MAX as i32;
+    #[inline(always)]
+    fn from_i32(v: i32) -> Self {
+        v as i8
+    }
+}
+
 /// One quantized LSTM layer (borrowed, typically from flash).
 #[derive(Clone, Copy, Debug)]
 pub struct QLayer<'a> {
     input: usize,
     hidden: usize,
-    w_x: &'a [i8],
-    w_h: &'a [i8],
+    w_x: Weights<'a>,
+    w_h: Weights<'a>,
     bias: &'a [i32],
     rq_x: RowScales<'a>,
     rq_h: RowScales<'a>,
     cell_frac: u8,
+    /// Right shift taking `acc_x` / `acc_h` into `i32` (0 for int8 weights).
+    pre_x: u8,
+    pre_h: u8,
 }
 
 /// Per-row requantization: a Q31 multiplier and a shift per row (see
@@ -137,11 +342,24 @@ impl<'a> RowScales<'a> {
         4 * self.mult.len() + self.shift.len()
     }
 
+    /// Requantizes row `row`'s accumulator after a rounding right shift by
+    /// `pre` (see [`pre_shift_for`]); `pre == 0` is the plain `i32` path.
     #[inline]
-    fn apply(&self, row: usize, acc: i32) -> i32 {
+    fn apply(&self, row: usize, acc: i64, pre: u8) -> i32 {
+        let acc32 = if pre == 0 { acc as i32 } else { round_shr64(acc, pre as u32) as i32 };
         match (self.mult.get(row), self.shift.get(row)) {
-            (Some(m), Some(s)) => Requant { mult: *m, shift: *s as i32 }.apply(acc),
+            (Some(m), Some(s)) => Requant { mult: *m, shift: *s as i32 - pre as i32 }.apply(acc32),
             _ => 0,
+        }
+    }
+
+    /// Checks that every shift minus `pre` stays a valid requantization shift.
+    fn check_pre(&self, pre: u8) -> Result<(), Error> {
+        match self.shift.iter().find(|s| (**s as i32 - pre as i32) < -31) {
+            Some(s) => {
+                Err(Error::Format { what: "requant shift after the int16 pre-shift", value: *s as i32 - pre as i32 })
+            }
+            None => Ok(()),
         }
     }
 }
@@ -149,24 +367,25 @@ impl<'a> RowScales<'a> {
 impl<'a> QLayer<'a> {
     /// A layer with `input` features and `hidden` units.
     ///
-    /// - `w_x`: `[4H, X]` int8, `w_h`: `[4H, H]` int8, row-major, gates
-    ///   `i, f, g, o`;
+    /// - `w_x`: `[4H, X]`, `w_h`: `[4H, H]`, row-major, gates `i, f, g, o`,
+    ///   both int8 or both int16;
     /// - `bias`: `[4H]` in pre-activation units (LSB `2^-19`);
     /// - `rq_x`, `rq_h`: `[4H]` row scales taking `acc_x`/`acc_h` to
     ///   pre-activation units;
     /// - `cell_frac`: fractional bits of the cell.
     ///
     /// # Errors
-    /// [`Error::Shape`] for wrong lengths or a zero dimension;
-    /// [`Error::AccumulatorBound`] when
-    /// `sum |w| * 32768` of a row exceeds `i32::MAX`. The cell format is
-    /// checked by [`QModel::new`], which knows the cell width.
+    /// [`Error::Shape`] for wrong lengths, a zero dimension or mixed weight
+    /// types; [`Error::AccumulatorBound`] when `sum |w| * 32768` of an int8
+    /// row exceeds `i32::MAX`; [`Error::Format`] when an int16 matrix's
+    /// pre-shift pushes a requantization shift below -31. The cell format
+    /// and the scheme are checked by [`QModel::new`].
     #[allow(clippy::too_many_arguments)]
     pub fn new(
         input: usize,
         hidden: usize,
-        w_x: &'a [i8],
-        w_h: &'a [i8],
+        w_x: Weights<'a>,
+        w_h: Weights<'a>,
         bias: &'a [i32],
         rq_x: RowScales<'a>,
         rq_h: RowScales<'a>,
@@ -181,9 +400,14 @@ impl<'a> QLayer<'a> {
         check_len("bias", bias.len(), rows)?;
         check_len("rq_x", rq_x.len(), rows)?;
         check_len("rq_h", rq_h.len(), rows)?;
-        check_bound("input weights", 0, w_x, input)?;
-        check_bound("recurrent weights", 0, w_h, hidden)?;
-        Ok(QLayer { input, hidden, w_x, w_h, bias, rq_x, rq_h, cell_frac })
+        if w_x.is_i16() != w_h.is_i16() {
+            return Err(Error::Shape { what: "w_h element size (must match w_x)", expected: 0, got: 1 });
+        }
+        let pre_x = check_bound("input weights", 0, w_x, input)?;
+        let pre_h = check_bound("recurrent weights", 0, w_h, hidden)?;
+        rq_x.check_pre(pre_x)?;
+        rq_h.check_pre(pre_h)?;
+        Ok(QLayer { input, hidden, w_x, w_h, bias, rq_x, rq_h, cell_frac, pre_x, pre_h })
     }
 
     /// Input features X.
@@ -203,7 +427,7 @@ impl<'a> QLayer<'a> {
 
     /// Weight and bias bytes of this layer as stored.
     pub fn weight_bytes(&self) -> usize {
-        self.w_x.len() + self.w_h.len() + 4 * self.bias.len() + self.rq_x.bytes() + self.rq_h.bytes()
+        self.w_x.bytes() + self.w_h.bytes() + 4 * self.bias.len() + self.rq_x.bytes() + self.rq_h.bytes()
     }
 }
 
@@ -214,13 +438,50 @@ pub fn worst_case_accumulator(row: &[i8]) -> i64 {
     row.iter().map(|v| (*v as i64).abs()).sum::<i64>() * ACT_MAX
 }
 
-fn check_bound(what: &'static str, layer: usize, w: &[i8], cols: usize) -> Result<(), Error> {
-    for (row, r) in w.chunks_exact(cols).enumerate() {
-        if worst_case_accumulator(r) > i32::MAX as i64 {
-            return Err(Error::AccumulatorBound { what, layer, row });
+/// Checks the accumulator bound and returns the pre-shift: 0 for int8
+/// weights (a row that could overflow `i32` is refused); for int16 weights
+/// the smallest shift that brings every row's worst case below `2^30`.
+fn check_bound(what: &'static str, layer: usize, w: Weights<'_>, cols: usize) -> Result<u8, Error> {
+    match w {
+        Weights::I8(w) => {
+            for (row, r) in w.chunks_exact(cols).enumerate() {
+                if worst_case_accumulator(r) > i32::MAX as i64 {
+                    return Err(Error::AccumulatorBound { what, layer, row });
+                }
+            }
+            Ok(0)
+        }
+        Weights::I16(w) => {
+            let worst = w
+                .chunks_exact(cols)
+                .map(|r| r.iter().map(|v| (*v as i64).abs()).sum::<i64>() * ACT_MAX)
+                .max()
+                .unwrap_or(0);
+            Ok(pre_shift_for(worst))
         }
     }
-    Ok(())
+}
+
+/// The smallest right shift `p` with `worst >> p < 2^30`, so the rounded,
+/// shifted accumulator fits `i32` with room to spare.
+pub fn pre_shift_for(worst: i64) -> u8 {
+    let mut p = 0u8;
+    while p < 40 && (worst >> p) >= (1 << 30) {
+        p += 1;
+    }
+    p
+}
+
+/// Rounding right shift of an `i64`, half away from zero (as
+/// [`round_shr`]); `n` in `1..=62`.
+#[inline]
+fn round_shr64(x: i64, n: u32) -> i64 {
+    let half = 1i64 << (n - 1);
+    if x >= 0 {
+        (x + half) >> n
+    } else {
+        -((half - x) >> n)
+    }
 }
 
 /// A quantized dense head `y = requant(W h) + b` (borrowed).
@@ -228,27 +489,29 @@ fn check_bound(what: &'static str, layer: usize, w: &[i8], cols: usize) -> Resul
 pub struct QHead<'a> {
     input: usize,
     output: usize,
-    w: &'a [i8],
+    w: Weights<'a>,
     bias: &'a [i32],
     rq: RowScales<'a>,
+    pre: u8,
 }
 
 impl<'a> QHead<'a> {
     /// A head from `input` hidden units to `output` values: `w` is `[Y, H]`
-    /// int8, `bias` `[Y]` in output units, `rq` `[Y]` row scales taking the
+    /// (int8 or int16), `bias` `[Y]` in output units, `rq` `[Y]` row scales taking the
     /// accumulator to the output's `int16` scale.
     ///
     /// # Errors
     /// As [`QLayer::new`].
-    pub fn new(input: usize, output: usize, w: &'a [i8], bias: &'a [i32], rq: RowScales<'a>) -> Result<Self, Error> {
+    pub fn new(input: usize, output: usize, w: Weights<'a>, bias: &'a [i32], rq: RowScales<'a>) -> Result<Self, Error> {
         if input == 0 || output == 0 {
             return Err(Error::Shape { what: "head dimension", expected: 1, got: 0 });
         }
         check_len("head weight", w.len(), dim_mul("head weight", input, output)?)?;
         check_len("head bias", bias.len(), output)?;
         check_len("head rq", rq.len(), output)?;
-        check_bound("head weights", 0, w, input)?;
-        Ok(QHead { input, output, w, bias, rq })
+        let pre = check_bound("head weights", 0, w, input)?;
+        rq.check_pre(pre)?;
+        Ok(QHead { input, output, w, bias, rq, pre })
     }
 
     /// Output values Y.
@@ -258,7 +521,7 @@ impl<'a> QHead<'a> {
 
     /// Weight, bias and requantization bytes of the head as stored.
     pub fn weight_bytes(&self) -> usize {
-        self.w.len() + 4 * self.bias.len() + self.rq.bytes()
+        self.w.bytes() + 4 * self.bias.len() + self.rq.bytes()
     }
 }
 
@@ -268,6 +531,7 @@ impl<'a> QHead<'a> {
 pub struct QModel<'a> {
     layers: HVec<QLayer<'a>, MAX_LAYERS>,
     head: Option<QHead<'a>>,
+    scheme: Scheme,
     cell: CellWidth,
     table: &'static ActTable,
     table_kind: TableKind,
@@ -277,20 +541,28 @@ impl<'a> QModel<'a> {
     /// Stacks validated layers and an optional head.
     ///
     /// # Errors
-    /// [`Error::LayerCount`]; [`Error::Shape`] when dimensions do not chain;
-    /// [`Error::Format`] when a layer's `cell_frac` exceeds the cell width's
-    /// maximum (15 for `c16`, 31 for `c32`).
+    /// [`Error::LayerCount`]; [`Error::Shape`] when dimensions do not chain
+    /// or a weight type does not match the scheme; [`Error::Format`] when a
+    /// layer's `cell_frac` exceeds the cell width's maximum (15 for `c16`,
+    /// 31 for `c32`).
     pub fn new(
         layers: &[QLayer<'a>],
         head: Option<QHead<'a>>,
+        scheme: Scheme,
         cell: CellWidth,
         table: TableKind,
     ) -> Result<Self, Error> {
         if let Some(l) = layers.iter().find(|l| l.cell_frac > cell.max_frac()) {
             return Err(Error::Format { what: "cell_frac", value: l.cell_frac as i32 });
         }
+        let wide = scheme == Scheme::W16A16;
+        let mismatch = layers.iter().any(|l| l.w_x.is_i16() != wide) || head.is_some_and(|h| h.w.is_i16() != wide);
+        if mismatch {
+            let bytes = scheme.weight_bytes();
+            return Err(Error::Shape { what: "weight element bytes (scheme)", expected: bytes, got: 3 - bytes });
+        }
         let v = stack_layers(layers, |l| (l.input, l.hidden), head.as_ref().map(|h| h.input))?;
-        Ok(QModel { layers: v, head, cell, table: table.table(), table_kind: table })
+        Ok(QModel { layers: v, head, scheme, cell, table: table.table(), table_kind: table })
     }
 
     /// The layers, first to last.
@@ -301,6 +573,11 @@ impl<'a> QModel<'a> {
     /// The head, if any.
     pub fn head(&self) -> Option<&QHead<'a>> {
         self.head.as_ref()
+    }
+
+    /// The scheme.
+    pub fn scheme(&self) -> Scheme {
+        self.scheme
     }
 
     /// The cell width.
@@ -329,7 +606,7 @@ impl<'a> QModel<'a> {
 
     /// `i16` words of caller-owned state (hidden, cell and scratch).
     pub fn state_words(&self) -> usize {
-        state_words_for(self.layers.iter().map(|l| l.hidden), self.cell)
+        state_words_for(self.layers.iter().map(|l| l.hidden), self.scheme, self.cell)
     }
 
     /// Multiply-accumulates per step (all dot products).
@@ -339,7 +616,7 @@ impl<'a> QModel<'a> {
     }
 
     /// One time step on `int16` inputs; writes `int16` outputs (head values
-    /// in their per-output scale, or the last hidden state in Q0.15).
+    /// in their per-output scale, or the last hidden state in its format).
     ///
     /// # Errors
     /// [`Error::StateSize`], [`Error::InputSize`], [`Error::OutputSize`] when
@@ -348,7 +625,8 @@ impl<'a> QModel<'a> {
         self.step_probed(state, x, out, &mut ())
     }
 
-    /// [`QModel::step`] reporting every gate, cell and hidden value to `probe`.
+    /// [`QModel::step`] reporting every gate, cell and hidden value to `probe`
+    /// (the hidden state in the scheme's format: Q0.15, or Q0.7 for `w8a8`).
     ///
     /// # Errors
     /// As [`QModel::step`].
@@ -369,29 +647,53 @@ impl<'a> QModel<'a> {
         if out.len() != self.output_len() {
             return Err(Error::OutputSize { expected: self.output_len(), got: out.len() });
         }
-        let cw = self.cell.words();
-        let layer_words: usize = self.layers.iter().map(|l| l.hidden * (1 + cw)).sum();
-        let (mut rest, scratch) = state.split_at_mut(layer_words);
-        let mut prev_h: Option<&[i16]> = None;
-        for (k, layer) in self.layers.iter().enumerate() {
-            let (hc, tail) = rest.split_at_mut(layer.hidden * (1 + cw));
-            rest = tail;
-            let (h, c) = hc.split_at_mut(layer.hidden);
-            let input = prev_h.unwrap_or(x);
-            layer_step(layer, k, self.cell, self.table, input, h, c, scratch, probe);
-            prev_h = Some(h);
+        match self.scheme {
+            Scheme::W8A16 => self.run::<i8, i16, P>(state, x, out, probe),
+            Scheme::W8A8 => self.run::<i8, i8, P>(state, x, out, probe),
+            Scheme::W16A16 => self.run::<i16, i16, P>(state, x, out, probe),
         }
-        let last = prev_h.unwrap_or(x);
+    }
+
+    /// The step for one (weight, hidden) element pair; buffers are checked.
+    fn run<W: Weight, A: Hidden, P: Probe<i32>>(
+        &self,
+        state: &mut [i16],
+        x: &[i16],
+        out: &mut [i16],
+        probe: &mut P,
+    ) -> Result<(), Error> {
+        let cw = self.cell.words();
+        let layer_words: usize = self.layers.iter().map(|l| self.scheme.hidden_words(l.hidden) + l.hidden * cw).sum();
+        let (mut rest, scratch) = state.split_at_mut(layer_words);
+        let scratch: &mut [A] = cast_state(scratch)?;
+        let mut prev: Option<&[A]> = None;
+        for (k, layer) in self.layers.iter().enumerate() {
+            let hw = self.scheme.hidden_words(layer.hidden);
+            let (hc, tail) = rest.split_at_mut(hw + layer.hidden * cw);
+            rest = tail;
+            let (h_words, c) = hc.split_at_mut(hw);
+            let h: &mut [A] = cast_state(h_words)?;
+            let got = h.len();
+            let h = h.get_mut(..layer.hidden).ok_or(Error::StateSize { expected: layer.hidden, got })?;
+            let ctx = StepCtx { layer, k, cell: self.cell, table: self.table };
+            match prev {
+                None => layer_step::<W, A, i16, P>(&ctx, x, h, c, scratch, probe),
+                Some(p) => layer_step::<W, A, A, P>(&ctx, p, h, c, scratch, probe),
+            }
+            prev = Some(h);
+        }
+        let last = prev.unwrap_or(&[]);
         match &self.head {
             Some(head) => {
-                let rows = head.w.chunks_exact(head.input).zip(head.bias).enumerate();
+                let w = W::slice(head.w);
+                let rows = w.chunks_exact(head.input).zip(head.bias).enumerate();
                 for (o, (r, (row, b))) in out.iter_mut().zip(rows) {
-                    *o = sat_i16(head.rq.apply(r, dot(row, last)).saturating_add(*b));
+                    *o = sat_i16(head.rq.apply(r, W::dot(row, last), head.pre).saturating_add(*b));
                 }
             }
             None => {
                 for (o, v) in out.iter_mut().zip(last) {
-                    *o = *v;
+                    *o = v.widen() as i16;
                 }
             }
         }
@@ -399,11 +701,18 @@ impl<'a> QModel<'a> {
     }
 }
 
-/// `i16` state words for layers of the given hidden sizes and cell width:
-/// `sum(H * (1 + cell words)) + max(H)`.
-pub fn state_words_for(hidden: impl Iterator<Item = usize> + Clone, cell: CellWidth) -> usize {
+/// Views state words as hidden-state elements (`i16` as is; `i8` two per
+/// word). Never fails for these types; the error only avoids a panic path.
+fn cast_state<A: Elem>(words: &mut [i16]) -> Result<&mut [A], Error> {
+    bytemuck::try_cast_slice_mut(words).map_err(|_| Error::StateSize { expected: 0, got: 0 })
+}
+
+/// `i16` state words for layers of the given hidden sizes, scheme and cell
+/// width: per layer the hidden state and the cell, plus scratch for the
+/// largest layer's new hidden state.
+pub fn state_words_for(hidden: impl Iterator<Item = usize> + Clone, scheme: Scheme, cell: CellWidth) -> usize {
     let hmax = hidden.clone().max().unwrap_or(0);
-    hidden.map(|h| h * (1 + cell.words())).sum::<usize>() + hmax
+    hidden.map(|h| scheme.hidden_words(h) + h * cell.words()).sum::<usize>() + scheme.hidden_words(hmax)
 }
 
 /// A fixed-capacity, zero-initialised state buffer that can live in a
@@ -437,13 +746,6 @@ impl<const N: usize> Default for StateBuf<N> {
     }
 }
 
-/// Exact int8 x int16 dot product. The constructor's bound check proves the
-/// sum fits in `i32`; `wrapping_add` only avoids a debug-mode panic path.
-#[inline]
-fn dot(w: &[i8], v: &[i16]) -> i32 {
-    w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(*a as i32 * *b as i32))
-}
-
 #[inline]
 fn read_cell(c: &[i16], j: usize, cell: CellWidth) -> i32 {
     match cell {
@@ -475,48 +777,57 @@ fn write_cell(c: &mut [i16], j: usize, cell: CellWidth, v: i32) {
     }
 }
 
-#[allow(clippy::too_many_arguments)]
-fn layer_step<P: Probe<i32>>(
-    layer: &QLayer<'_>,
+/// What one layer's step needs besides its buffers.
+struct StepCtx<'l, 'a> {
+    layer: &'l QLayer<'a>,
     k: usize,
     cell: CellWidth,
-    table: &ActTable,
-    x: &[i16],
-    h: &mut [i16],
+    table: &'static ActTable,
+}
+
+/// One layer's step: weights `W`, hidden state `A`, input `X` (the model
+/// input for layer 0, the previous layer's hidden state after).
+fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
+    ctx: &StepCtx<'_, '_>,
+    x: &[X],
+    h: &mut [A],
     c: &mut [i16],
-    scratch: &mut [i16],
+    scratch: &mut [A],
     probe: &mut P,
 ) {
-    let hd = layer.hidden;
-    let xi = layer.input;
+    let layer = ctx.layer;
+    let (hd, xi) = (layer.hidden, layer.input);
     let frac = layer.cell_frac as u32;
-    let pre_of = |r: usize| -> i32 {
-        let wx = layer.w_x.get(r * xi..(r + 1) * xi).unwrap_or(&[]);
-        let wh = layer.w_h.get(r * hd..(r + 1) * hd).unwrap_or(&[]);
+    let (w_x, w_h) = (W::slice(layer.w_x), W::slice(layer.w_h));
+    let pre_of = |r: usize, h: &[A]| -> i32 {
+        let wx = w_x.get(r * xi..(r + 1) * xi).unwrap_or(&[]);
+        let wh = w_h.get(r * hd..(r + 1) * hd).unwrap_or(&[]);
         let b = layer.bias.get(r).copied().unwrap_or(0);
-        layer.rq_x.apply(r, dot(wx, x)).saturating_add(layer.rq_h.apply(r, dot(wh, h))).saturating_add(b)
+        let ax = layer.rq_x.apply(r, W::dot(wx, x), layer.pre_x);
+        let ah = layer.rq_h.apply(r, W::dot(wh, h), layer.pre_h);
+        ax.saturating_add(ah).saturating_add(b)
     };
     for (j, hn) in scratch.iter_mut().enumerate().take(hd) {
-        let pre = [pre_of(j), pre_of(hd + j), pre_of(2 * hd + j), pre_of(3 * hd + j)];
-        let gi = sigmoid(table, pre[0]);
-        let gf = sigmoid(table, pre[1]);
-        let gg = tanh(table, pre[2]);
-        let go = sigmoid(table, pre[3]);
-        let c_old = read_cell(c, j, cell);
+        let pre = [pre_of(j, h), pre_of(hd + j, h), pre_of(2 * hd + j, h), pre_of(3 * hd + j, h)];
+        let gi = sigmoid(ctx.table, pre[0]);
+        let gf = sigmoid(ctx.table, pre[1]);
+        let gg = tanh(ctx.table, pre[2]);
+        let go = sigmoid(ctx.table, pre[3]);
+        let c_old = read_cell(c, j, ctx.cell);
         let fc = mul_q31(gf, c_old);
         let ig = round_shr(mul_q31(gi, gg), 31 - frac);
         let mut c_new = fc.saturating_add(ig);
-        if cell == CellWidth::C16 {
+        if ctx.cell == CellWidth::C16 {
             c_new = sat_i16(c_new) as i32;
         }
-        let t = tanh(table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
-        // |o * tanh| < 1, but rounding can reach -1.0 (-32768): clamp
-        // symmetrically so h stays in (-1, 1) like the float value.
-        let h_new = round_shr(mul_q31(go, t), 16).clamp(-(i16::MAX as i32), i16::MAX as i32) as i16;
-        probe.gates(k, j, &pre, &[gi, gf, gg, go]);
-        probe.state(k, j, c_new, h_new as i32);
-        write_cell(c, j, cell, c_new);
-        *hn = h_new;
+        let t = tanh(ctx.table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
+        // |o * tanh| < 1, but rounding can reach -1.0: clamp symmetrically
+        // so h stays in (-1, 1) like the float value.
+        let h_new = round_shr(mul_q31(go, t), 31 - A::FRAC).clamp(-A::MAX, A::MAX);
+        probe.gates(ctx.k, j, &pre, &[gi, gf, gg, go]);
+        probe.state(ctx.k, j, c_new, h_new);
+        write_cell(c, j, ctx.cell, c_new);
+        *hn = A::from_i32(h_new);
     }
     for (hv, s) in h.iter_mut().zip(scratch.iter()) {
         *hv = *s;
@@ -557,8 +868,8 @@ mod tests {
     #[test]
     fn wrong_sizes_are_errors_not_panics() {
         let (wx, wh, b, rq) = tiny();
-        let l = QLayer::new(1, 1, &wx, &wh, &b, rq, rq, 13).unwrap();
-        let m = QModel::new(&[l], None, CellWidth::C16, TableKind::Standard).unwrap();
+        let l = QLayer::new(1, 1, Weights::I8(&wx), Weights::I8(&wh), &b, rq, rq, 13).unwrap();
+        let m = QModel::new(&[l], None, Scheme::W8A16, CellWidth::C16, TableKind::Standard).unwrap();
         assert_eq!(m.state_words(), 3);
         let mut st = [0i16; 2];
         assert_eq!(m.step(&mut st, &[1], &mut [0]), Err(Error::StateSize { expected: 3, got: 2 }));
@@ -566,10 +877,13 @@ mod tests {
         assert_eq!(m.step(&mut st, &[1, 2], &mut [0]), Err(Error::InputSize { expected: 1, got: 2 }));
         assert_eq!(m.step(&mut st, &[1], &mut []), Err(Error::OutputSize { expected: 1, got: 0 }));
         assert_eq!(st, [0; 3]);
-        assert!(matches!(QModel::new(&[l], None, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()), Ok(4)));
-        let bad = QLayer::new(1, 1, &wx, &wh, &b, rq, rq, 20).unwrap();
+        assert!(matches!(
+            QModel::new(&[l], None, Scheme::W8A16, CellWidth::C32, TableKind::Standard).map(|m| m.state_words()),
+            Ok(4)
+        ));
+        let bad = QLayer::new(1, 1, Weights::I8(&wx), Weights::I8(&wh), &b, rq, rq, 20).unwrap();
         assert_eq!(
-            QModel::new(&[bad], None, CellWidth::C16, TableKind::Standard).unwrap_err(),
+            QModel::new(&[bad], None, Scheme::W8A16, CellWidth::C16, TableKind::Standard).unwrap_err(),
             Error::Format { what: "cell_frac", value: 20 }
         );
     }
@@ -582,19 +896,22 @@ mod tests {
         let b = [0i32; 4];
         let rq = RowScales::new(&M1, &S1).unwrap();
         assert_eq!(
-            QLayer::new(600, 1, &wx, &wh, &b, rq, rq, 13).unwrap_err(),
+            QLayer::new(600, 1, Weights::I8(&wx), Weights::I8(&wh), &b, rq, rq, 13).unwrap_err(),
             Error::AccumulatorBound { what: "input weights", layer: 0, row: 0 }
         );
-        assert!(QLayer::new(516, 1, &wx[..4 * 516], &wh, &b, rq, rq, 13).is_ok());
+        assert!(QLayer::new(516, 1, Weights::I8(&wx[..4 * 516]), Weights::I8(&wh), &b, rq, rq, 13).is_ok());
     }
 
     #[test]
     fn huge_dimensions_are_errors_not_overflows() {
         // Found in review: 4 * hidden wrapped to 0 and was accepted.
         let none = RowScales::new(&[], &[]).unwrap();
-        assert!(matches!(QLayer::new(1, usize::MAX / 4 + 1, &[], &[], &[], none, none, 0), Err(Error::Shape { .. })));
+        assert!(matches!(
+            QLayer::new(1, usize::MAX / 4 + 1, Weights::I8(&[]), Weights::I8(&[]), &[], none, none, 0),
+            Err(Error::Shape { .. })
+        ));
         let two = RowScales::new(&M1[..2], &S1[..2]).unwrap();
-        assert!(matches!(QHead::new(usize::MAX / 2 + 1, 2, &[], &[], two), Err(Error::Shape { .. })));
+        assert!(matches!(QHead::new(usize::MAX / 2 + 1, 2, Weights::I8(&[]), &[], two), Err(Error::Shape { .. })));
         assert!(matches!(
             crate::float::FloatLayer::new(usize::MAX / 4 + 1, 1, &[], &[0.0; 4], &[0.0; 4]),
             Err(Error::Shape { .. })
@@ -614,6 +931,9 @@ mod tests {
         assert!(matches!(RowScales::new(&M1, &S1[..3]), Err(Error::Shape { .. })));
         let (wx, wh, b, _) = tiny();
         let short = RowScales::new(&M1[..3], &S1[..3]).unwrap();
-        assert!(matches!(QLayer::new(1, 1, &wx, &wh, &b, short, short, 13), Err(Error::Shape { .. })));
+        assert!(matches!(
+            QLayer::new(1, 1, Weights::I8(&wx), Weights::I8(&wh), &b, short, short, 13),
+            Err(Error::Shape { .. })
+        ));
     }
 }

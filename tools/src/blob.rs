@@ -5,7 +5,7 @@
 //! 4-byte aligned memory so the core can borrow them in place, exactly as
 //! the device does from flash.
 
-use crate::quantize::QuantModelData;
+use crate::quantize::{OwnedWeights, QuantModelData};
 use anyhow::{bail, Context, Result};
 use lapwing::model::{
     Blob, SectionKind, ALIGN, CRC, ENTRY_LEN, HEADER_LEN, HEAD_KINDS, LAYER_KINDS, MAGIC, MODEL_KINDS, VERSION,
@@ -24,6 +24,13 @@ struct Payload {
 
 fn i8_bytes(v: &[i8]) -> Vec<u8> {
     v.iter().map(|x| *x as u8).collect()
+}
+
+fn weight_bytes(w: &OwnedWeights) -> Vec<u8> {
+    match w {
+        OwnedWeights::I8(v) => i8_bytes(v),
+        OwnedWeights::I16(v) => v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+    }
 }
 
 fn i32_bytes(v: &[i32]) -> Vec<u8> {
@@ -50,8 +57,8 @@ fn payloads(q: &QuantModelData) -> Result<Vec<Payload>> {
         for kind in LAYER_KINDS {
             let (r, c, bytes) = match kind {
                 SectionKind::LayerInfo => (1, 4, i32_bytes(&[x as i32, h as i32, l.cell_frac as i32, 0])),
-                SectionKind::LayerWx => (rows, x, i8_bytes(&l.w_x)),
-                SectionKind::LayerWh => (rows, h, i8_bytes(&l.w_h)),
+                SectionKind::LayerWx => (rows, x, weight_bytes(&l.w_x)),
+                SectionKind::LayerWh => (rows, h, weight_bytes(&l.w_h)),
                 SectionKind::LayerBias => (rows, 1, i32_bytes(&l.bias)),
                 SectionKind::LayerRqXMult => (rows, 1, i32_bytes(&l.rq_x.mult)),
                 SectionKind::LayerRqXShift => (rows, 1, i8_bytes(&l.rq_x.shift)),
@@ -66,7 +73,7 @@ fn payloads(q: &QuantModelData) -> Result<Vec<Payload>> {
         let (y, h) = (dim(hd.output, "head outputs")?, dim(hd.input, "head input")?);
         for kind in HEAD_KINDS {
             let (r, c, bytes) = match kind {
-                SectionKind::HeadW => (y, h, i8_bytes(&hd.w)),
+                SectionKind::HeadW => (y, h, weight_bytes(&hd.w)),
                 SectionKind::HeadBias => (y, 1, i32_bytes(&hd.bias)),
                 SectionKind::HeadRqMult => (y, 1, i32_bytes(&hd.rq.mult)),
                 SectionKind::HeadRqShift => (y, 1, i8_bytes(&hd.rq.shift)),
@@ -96,7 +103,7 @@ pub fn encode(q: &QuantModelData) -> Result<Vec<u8>> {
     q.view().context("the quantized model is invalid")?;
     let sections = payloads(q)?;
     for s in &sections {
-        let size = s.kind.elem().size() * s.rows as usize * s.cols as usize;
+        let size = s.kind.elem(q.scheme).size() * s.rows as usize * s.cols as usize;
         if size != s.bytes.len() {
             bail!("internal: section {} has {} bytes, dims say {size}", s.kind.name(), s.bytes.len());
         }
@@ -114,7 +121,7 @@ pub fn encode(q: &QuantModelData) -> Result<Vec<u8>> {
     b.extend_from_slice(&MAGIC);
     b.extend_from_slice(&VERSION.to_le_bytes());
     b.extend_from_slice(&(HEADER_LEN as u16).to_le_bytes());
-    b.push(0); // scheme w8a16
+    b.push(q.scheme as u8);
     b.push(q.cell as u8);
     b.push(q.table as u8);
     b.push(u8::try_from(q.layers.len()).context("too many layers")?);
@@ -124,13 +131,13 @@ pub fn encode(q: &QuantModelData) -> Result<Vec<u8>> {
     b.push(0);
     b.extend_from_slice(&u16::try_from(sections.len()).context("too many sections")?.to_le_bytes());
     b.extend_from_slice(&u32::try_from(total).context("blob larger than 4 GiB")?.to_le_bytes());
-    let words = state_words_for(q.layers.iter().map(|l| l.hidden), q.cell);
+    let words = state_words_for(q.layers.iter().map(|l| l.hidden), q.scheme, q.cell);
     b.extend_from_slice(&u32::try_from(words).context("state too large")?.to_le_bytes());
     b.extend_from_slice(&0u32.to_le_bytes());
     for (s, off) in sections.iter().zip(&offsets) {
         b.push(s.kind as u8);
         b.push(s.layer);
-        b.push(s.kind.elem() as u8);
+        b.push(s.kind.elem(q.scheme) as u8);
         b.push(0);
         for v in [s.rows, s.cols, *off as u32, s.bytes.len() as u32] {
             b.extend_from_slice(&v.to_le_bytes());

@@ -85,6 +85,7 @@ pub fn compare(float: &FloatModelData, quant: &QuantModelData, inputs: &[Vec<f32
         bail!("the float model and the quantized model have different shapes");
     }
     let hidden: Vec<usize> = fm.layers().iter().map(|l| l.hidden()).collect();
+    let hidden_unit = 1.0 / (1u64 << quant.scheme.hidden_frac()) as f64;
     let cell_unit: Vec<f64> = quant.layers.iter().map(|l| 1.0 / (1u64 << l.cell_frac) as f64).collect();
     let mut fs = vec![0.0f32; fm.state_len()];
     let mut qs = vec![0i16; qm.state_words()];
@@ -107,7 +108,7 @@ pub fn compare(float: &FloatModelData, quant: &QuantModelData, inputs: &[Vec<f32
         out_acc.add_all(&fo, &quant.dequantize_output(&qo));
         for k in 0..nl {
             for j in 0..hidden[k] {
-                h_acc[k].add(fc.hidden[k][j] as f64, qc.hidden[k][j] as f64 / 32_768.0);
+                h_acc[k].add(fc.hidden[k][j] as f64, qc.hidden[k][j] as f64 * hidden_unit);
                 c_acc[k].add(fc.cell[k][j] as f64, qc.cell[k][j] as f64 * cell_unit[k]);
                 for ((acc, f), q) in g_acc[k].iter_mut().zip(fc.gates[k][j]).zip(qc.gates[k][j]) {
                     acc.add(f as f64, q as f64 / ONE_Q31);

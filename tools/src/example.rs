@@ -102,7 +102,7 @@ pub fn summarize(opts: &QuantOptions, calib_steps: usize, steps: usize) -> Resul
         }
     }
     Ok(Summary {
-        scheme: format!("w8a16-{}-{}", opts.cell.name(), opts.table.name()),
+        scheme: format!("{}-{}-{}", opts.scheme.name(), opts.cell.name(), opts.table.name()),
         steps: cmp.steps,
         footprint,
         tensors,

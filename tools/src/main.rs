@@ -5,7 +5,7 @@
 use anyhow::Context;
 use clap::{Parser, Subcommand, ValueEnum};
 use lapwing::activation::TableKind;
-use lapwing::quant::CellWidth;
+use lapwing::quant::{CellWidth, Scheme};
 use lapwing_tools::blob::{encode, LoadedBlob};
 use lapwing_tools::calibrate::RangeMethod;
 use lapwing_tools::import::{ImportOptions, Layout};
@@ -54,6 +54,24 @@ struct Planned {
     /// Ignored: this subcommand is not implemented yet.
     #[arg(trailing_var_arg = true, allow_hyphen_values = true, hide = true)]
     rest: Vec<String>,
+}
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+enum SchemeArg {
+    /// int8 weights, int16 hidden state (default).
+    W8a16,
+    /// int8 weights, int8 hidden state: least RAM.
+    W8a8,
+    /// int16 weights, int16 hidden state: highest fidelity.
+    W16a16,
+}
+
+fn scheme_of(s: SchemeArg) -> Scheme {
+    match s {
+        SchemeArg::W8a16 => Scheme::W8A16,
+        SchemeArg::W8a8 => Scheme::W8A8,
+        SchemeArg::W16a16 => Scheme::W16A16,
+    }
 }
 
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -152,6 +170,9 @@ struct QuantizeArgs {
     output: PathBuf,
     #[command(flatten)]
     model_args: ModelArgs,
+    /// Integer scheme: weight and hidden-state widths.
+    #[arg(long, value_enum, default_value = "w8a16", help_heading = "Scheme")]
+    scheme: SchemeArg,
     /// Cell state width.
     #[arg(long, value_enum, default_value = "c16", help_heading = "Scheme")]
     cell: CellArg,
@@ -213,6 +234,9 @@ struct CodegenArgs {
 /// Options of `demo`.
 #[derive(clap::Args, Debug)]
 struct DemoArgs {
+    /// Integer scheme.
+    #[arg(long, value_enum, default_value = "w8a16", help_heading = "Scheme")]
+    scheme: SchemeArg,
     /// Cell state width.
     #[arg(long, value_enum, default_value = "c16", help_heading = "Scheme")]
     cell: CellArg,
@@ -275,7 +299,12 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
         RangeArg::Minmax => RangeMethod::MinMax,
         RangeArg::Percentile => RangeMethod::Percentile(a.percentile),
     };
-    let opts = QuantOptions { cell: cell_width(a.cell), table: table_kind(a.table), headroom: a.headroom };
+    let opts = QuantOptions {
+        scheme: scheme_of(a.scheme),
+        cell: cell_width(a.cell),
+        table: table_kind(a.table),
+        headroom: a.headroom,
+    };
     let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), a.model_args.norm(), Some(&a.calib), true)?;
     println!("{}", prep.imported.summary());
     if prep.folded.is_some() {
@@ -363,7 +392,12 @@ fn demo(args: &DemoArgs) -> anyhow::Result<ExitCode> {
     if args.steps == 0 {
         anyhow::bail!("--steps must be at least 1");
     }
-    let opts = QuantOptions { cell: cell_width(args.cell), table: table_kind(args.table), ..Default::default() };
+    let opts = QuantOptions {
+        scheme: scheme_of(args.scheme),
+        cell: cell_width(args.cell),
+        table: table_kind(args.table),
+        ..Default::default()
+    };
     let summary = example::summarize(&opts, example::CALIB_STEPS, args.steps)?;
     if args.json {
         println!("{}", serde_json::to_string_pretty(&summary)?);

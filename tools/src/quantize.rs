@@ -1,7 +1,9 @@
 //! The host quantizer: float model + calibrated ranges -> integer model.
 //!
-//! Scheme `w8a16` (DESIGN.md section 3, and the module docs of
-//! [`lapwing::quant`] for the device side):
+//! Schemes `w8a16`, `w8a8`, `w16a16` (DESIGN.md section 3, and the module
+//! docs of [`lapwing::quant`] for the device side); described for `w8a16`,
+//! with int16 weights (`[-32767, 32767]`) for `w16a16` and a Q0.7 hidden
+//! state (`s = 2^-7`) for `w8a8`:
 //! - input scale per feature `s_x = absmax * headroom / 32767`, folded into
 //!   layer 0's weights (`W'[r][c] = W[r][c] * s_x[c]`); deeper layers see
 //!   `h` in Q0.15 (`s = 2^-15`);
@@ -24,11 +26,13 @@ use crate::float_model::FloatModelData;
 use anyhow::{bail, Context, Result};
 use lapwing::activation::{TableKind, PRE_FRAC};
 use lapwing::fixed_point::{to_fixed_i32, Requant};
-use lapwing::quant::{worst_case_accumulator, CellWidth, QHead, QLayer, QModel, RowScales};
+use lapwing::quant::{worst_case_accumulator, CellWidth, QHead, QLayer, QModel, RowScales, Scheme, Weights};
 
 /// Options of the quantizer.
 #[derive(Clone, Copy, Debug)]
 pub struct QuantOptions {
+    /// Integer scheme. Default `w8a16`.
+    pub scheme: Scheme,
     /// Cell width. Default `c16`.
     pub cell: CellWidth,
     /// Activation table. Default standard.
@@ -40,7 +44,7 @@ pub struct QuantOptions {
 
 impl Default for QuantOptions {
     fn default() -> Self {
-        QuantOptions { cell: CellWidth::C16, table: TableKind::Standard, headroom: 1.25 }
+        QuantOptions { scheme: Scheme::W8A16, cell: CellWidth::C16, table: TableKind::Standard, headroom: 1.25 }
     }
 }
 
@@ -51,10 +55,10 @@ pub struct QuantLayerData {
     pub input: usize,
     /// Hidden units H.
     pub hidden: usize,
-    /// `[4H, X]` int8.
-    pub w_x: Vec<i8>,
-    /// `[4H, H]` int8.
-    pub w_h: Vec<i8>,
+    /// `[4H, X]`.
+    pub w_x: OwnedWeights,
+    /// `[4H, H]`.
+    pub w_h: OwnedWeights,
     /// `[4H]` in pre-activation units.
     pub bias: Vec<i32>,
     /// `[4H]` row scales for `acc_x`.
@@ -72,12 +76,56 @@ pub struct QuantHeadData {
     pub input: usize,
     /// Outputs Y.
     pub output: usize,
-    /// `[Y, H]` int8.
-    pub w: Vec<i8>,
+    /// `[Y, H]`.
+    pub w: OwnedWeights,
     /// `[Y]` in output units.
     pub bias: Vec<i32>,
     /// `[Y]` row scales.
     pub rq: OwnedScales,
+}
+
+/// A weight matrix, owned, in the scheme's element type.
+#[derive(Clone, Debug, PartialEq)]
+pub enum OwnedWeights {
+    /// int8.
+    I8(Vec<i8>),
+    /// int16.
+    I16(Vec<i16>),
+}
+
+impl OwnedWeights {
+    /// The borrowed form the core takes.
+    pub fn view(&self) -> Weights<'_> {
+        match self {
+            OwnedWeights::I8(w) => Weights::I8(w),
+            OwnedWeights::I16(w) => Weights::I16(w),
+        }
+    }
+
+    /// Number of weights.
+    pub fn len(&self) -> usize {
+        self.view().len()
+    }
+
+    /// True when empty.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Values widened to `i32`, for the bound check and tests.
+    pub fn to_i32(&self) -> Vec<i32> {
+        match self {
+            OwnedWeights::I8(w) => w.iter().map(|v| *v as i32).collect(),
+            OwnedWeights::I16(w) => w.iter().map(|v| *v as i32).collect(),
+        }
+    }
+
+    fn from_values(v: Vec<i32>, scheme: Scheme) -> Self {
+        match scheme {
+            Scheme::W16A16 => OwnedWeights::I16(v.into_iter().map(|x| x as i16).collect()),
+            Scheme::W8A16 | Scheme::W8A8 => OwnedWeights::I8(v.into_iter().map(|x| x as i8).collect()),
+        }
+    }
 }
 
 /// Per-row requantization multipliers and shifts, owned (see
@@ -116,6 +164,8 @@ impl OwnedScales {
 /// can feed float data and read float results.
 #[derive(Clone, Debug, PartialEq)]
 pub struct QuantModelData {
+    /// Integer scheme.
+    pub scheme: Scheme,
     /// Cell width.
     pub cell: CellWidth,
     /// Activation table.
@@ -141,17 +191,27 @@ impl QuantModelData {
             .iter()
             .enumerate()
             .map(|(k, l)| {
-                QLayer::new(l.input, l.hidden, &l.w_x, &l.w_h, &l.bias, l.rq_x.view()?, l.rq_h.view()?, l.cell_frac)
-                    .map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
+                QLayer::new(
+                    l.input,
+                    l.hidden,
+                    l.w_x.view(),
+                    l.w_h.view(),
+                    &l.bias,
+                    l.rq_x.view()?,
+                    l.rq_h.view()?,
+                    l.cell_frac,
+                )
+                .map_err(|e| anyhow::anyhow!("layer {k}: {e}"))
             })
             .collect::<Result<Vec<_>>>()?;
         let head = match &self.head {
             Some(h) => Some(
-                QHead::new(h.input, h.output, &h.w, &h.bias, h.rq.view()?).map_err(|e| anyhow::anyhow!("head: {e}"))?,
+                QHead::new(h.input, h.output, h.w.view(), &h.bias, h.rq.view()?)
+                    .map_err(|e| anyhow::anyhow!("head: {e}"))?,
             ),
             None => None,
         };
-        QModel::new(&layers, head, self.cell, self.table).map_err(|e| anyhow::anyhow!("model: {e}"))
+        QModel::new(&layers, head, self.scheme, self.cell, self.table).map_err(|e| anyhow::anyhow!("model: {e}"))
     }
 
     /// Float inputs to device integers: `round(x / s_x)`, saturating.
@@ -175,27 +235,34 @@ pub fn input_to_int(x: &[f32], scale: &[f32]) -> Vec<i16> {
         .collect()
 }
 
-/// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`.
-/// Returns int8 values and per-row real scales.
-fn quantize_rows(w: &[f32], cols: usize, col_scale: &[f64]) -> (Vec<i8>, Vec<f64>) {
+/// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`,
+/// to symmetric integers in `[-qmax, qmax]`. Returns the integers and the
+/// per-row real scales.
+fn quantize_rows(w: &[f32], cols: usize, col_scale: &[f64], qmax: i32) -> (Vec<i32>, Vec<f64>) {
     let mut q = Vec::with_capacity(w.len());
     let mut scales = Vec::with_capacity(w.len() / cols.max(1));
     for row in w.chunks_exact(cols) {
         let folded: Vec<f64> = row.iter().zip(col_scale).map(|(v, s)| *v as f64 * s).collect();
         let m = folded.iter().fold(0.0f64, |a, v| a.max(v.abs()));
-        let scale = m / 127.0;
+        let scale = m / qmax as f64;
         scales.push(scale);
         for v in folded {
-            let qv = if scale == 0.0 { 0 } else { to_fixed_i32(v / scale, 0).clamp(-127, 127) };
-            q.push(qv as i8);
+            let qv = if scale == 0.0 { 0 } else { to_fixed_i32(v / scale, 0).clamp(-qmax, qmax) };
+            q.push(qv);
         }
     }
     (q, scales)
 }
 
-fn check_bound(q: &[i8], cols: usize, what: &str) -> Result<()> {
+/// For int8 weights, refuses a row whose accumulator could overflow `i32`
+/// (int16 weights are pre-shifted by the core and cannot overflow).
+fn check_bound(q: &[i32], cols: usize, scheme: Scheme, what: &str) -> Result<()> {
+    if scheme.weight_bytes() != 1 {
+        return Ok(());
+    }
     for (r, row) in q.chunks_exact(cols).enumerate() {
-        let worst = worst_case_accumulator(row);
+        let row8: Vec<i8> = row.iter().map(|v| *v as i8).collect();
+        let worst = worst_case_accumulator(&row8);
         if worst > i32::MAX as i64 {
             bail!(
                 "{what}, row {r}: worst-case accumulator {worst} exceeds 2^31 - 1 ({cols} columns); \
@@ -264,15 +331,18 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
     }
     let pre_unit = (1u64 << PRE_FRAC) as f64;
     let input_scale: Vec<f64> = ranges.input_absmax.iter().map(|m| scale_for(*m, opts.headroom)).collect();
-    let hidden_scale = 1.0 / 32_768.0;
+    let scheme = opts.scheme;
+    let qmax = scheme.weight_max();
+    let hidden_scale = 1.0 / (1u64 << scheme.hidden_frac()) as f64;
     let mut layers = Vec::new();
     for (k, (l, r)) in model.layers.iter().zip(&ranges.layers).enumerate() {
         let col_x: Vec<f64> = if k == 0 { input_scale.clone() } else { vec![hidden_scale; l.input] };
         let col_h = vec![hidden_scale; l.hidden];
-        let (w_x, sx) = quantize_rows(&l.w_x, l.input, &col_x);
-        let (w_h, sh) = quantize_rows(&l.w_h, l.hidden, &col_h);
-        check_bound(&w_x, l.input, &format!("layer {k} input weights"))?;
-        check_bound(&w_h, l.hidden, &format!("layer {k} recurrent weights"))?;
+        let (w_x, sx) = quantize_rows(&l.w_x, l.input, &col_x, qmax);
+        let (w_h, sh) = quantize_rows(&l.w_h, l.hidden, &col_h, qmax);
+        check_bound(&w_x, l.input, scheme, &format!("layer {k} input weights"))?;
+        check_bound(&w_h, l.hidden, scheme, &format!("layer {k} recurrent weights"))?;
+        let (w_x, w_h) = (OwnedWeights::from_values(w_x, scheme), OwnedWeights::from_values(w_h, scheme));
         let mut rq_x = OwnedScales::default();
         let mut rq_h = OwnedScales::default();
         for (row, (a, b)) in sx.iter().zip(&sh).enumerate() {
@@ -289,8 +359,9 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
     }
     let (head, output_scale) = match &model.head {
         Some(h) => {
-            let (w, sw) = quantize_rows(&h.w, h.input, &vec![hidden_scale; h.input]);
-            check_bound(&w, h.input, "head weights")?;
+            let (w, sw) = quantize_rows(&h.w, h.input, &vec![hidden_scale; h.input], qmax);
+            check_bound(&w, h.input, scheme, "head weights")?;
+            let w = OwnedWeights::from_values(w, scheme);
             let out_scale: Vec<f64> = ranges.output_absmax.iter().map(|m| scale_for(*m, opts.headroom)).collect();
             if out_scale.len() != h.output {
                 bail!("calibration has {} outputs, the head has {}", out_scale.len(), h.output);
@@ -309,6 +380,7 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
         }
     };
     let q = QuantModelData {
+        scheme,
         cell: opts.cell,
         table: opts.table,
         layers,

@@ -4,7 +4,7 @@
 
 use lapwing::activation::TableKind;
 use lapwing::model::{Blob, CRC};
-use lapwing::quant::CellWidth;
+use lapwing::quant::{CellWidth, Scheme};
 use lapwing_tools::blob::{encode, AlignedBytes};
 use lapwing_tools::calibrate::observe;
 use lapwing_tools::quantize::{quantize, QuantModelData, QuantOptions};
@@ -12,10 +12,14 @@ use lapwing_tools::synth::{random_model, random_walk, ModelSpec};
 use proptest::prelude::*;
 
 fn quantized(spec: &ModelSpec, seed: u64, cell: CellWidth, table: TableKind) -> QuantModelData {
+    quantized_as(spec, seed, Scheme::W8A16, cell, table)
+}
+
+fn quantized_as(spec: &ModelSpec, seed: u64, scheme: Scheme, cell: CellWidth, table: TableKind) -> QuantModelData {
     let m = random_model(spec, seed);
     let calib = random_walk(spec.input, 2_000, seed + 1);
     let ranges = observe(&m, &calib).expect("calibration");
-    quantize(&m, &ranges, &QuantOptions { cell, table, ..Default::default() }).expect("quantize")
+    quantize(&m, &ranges, &QuantOptions { scheme, cell, table, ..Default::default() }).expect("quantize")
 }
 
 fn run_model(model: &lapwing::quant::QModel<'_>, inputs: &[Vec<i16>]) -> Vec<Vec<i16>> {
@@ -46,8 +50,9 @@ fn blob_steps_are_bit_identical_to_the_in_memory_model() {
         (ModelSpec { input: 3, hidden: 8, layers: 2, output: None, gain: 2.0 }, CellWidth::C32, TableKind::Compact),
         (ModelSpec { input: 1, hidden: 5, layers: 3, output: Some(1), gain: 1.5 }, CellWidth::C32, TableKind::Standard),
     ];
-    for (i, (spec, cell, table)) in specs.iter().enumerate() {
-        let q = quantized(spec, 10 + i as u64, *cell, *table);
+    let cases = specs.iter().flat_map(|(sp, c, t)| Scheme::ALL.map(|s| (sp, s, *c, *t)));
+    for (i, (spec, scheme, cell, table)) in cases.enumerate() {
+        let q = quantized_as(spec, 10 + i as u64, scheme, cell, table);
         let bytes = encode(&q).expect("encode");
         let data = random_walk(spec.input, 3_000, 99 + i as u64);
         let ints: Vec<Vec<i16>> = data.iter().map(|x| q.quantize_input(x)).collect();
@@ -58,7 +63,8 @@ fn blob_steps_are_bit_identical_to_the_in_memory_model() {
         assert_eq!(blob.output_scale(), q.output_scale.as_slice());
         assert_eq!(blob.model().state_words(), q.view().expect("view").state_words());
         let dev = run_model(blob.model(), &ints);
-        assert_eq!(mem, dev, "case {i}: blob and in-memory model differ");
+        assert_eq!(mem, dev, "case {i} ({}): blob and in-memory model differ", scheme.name());
+        assert_eq!(blob.model().scheme(), scheme);
         // Deterministic encoding: the same model gives the same bytes.
         assert_eq!(encode(&q).expect("encode"), bytes);
     }

@@ -68,7 +68,7 @@ fn long_memory_retention() {
     inputs.extend(std::iter::repeat_n(vec![0.0f32], 10_000));
     let ranges = observe(&model, &inputs).unwrap();
     for cell in [CellWidth::C16, CellWidth::C32] {
-        let opts = QuantOptions { cell, table: TableKind::Standard, headroom: 1.25 };
+        let opts = QuantOptions { cell, table: TableKind::Standard, ..Default::default() };
         let q = quantize(&model, &ranges, &opts).unwrap();
         let cmp = compare(&model, &q, &inputs).unwrap();
         for j in 0..h {
