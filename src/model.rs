@@ -28,7 +28,7 @@
 //! ```
 //! Element types: 1 = i8, 2 = i16, 3 = i32, 4 = f32. Weight sections are
 //! i8, or i16 for `w16a16`. Section kinds are listed in
-//! [`SectionKind`]; every layer has all seven layer sections, the head
+//! [`SectionKind`]; every layer has all eight layer sections, the head
 //! sections appear exactly when the head flag is set, and the two scale
 //! sections always. The blob must start at a 4-byte aligned address (the
 //! generated Rust module guarantees it), so `i32` and `f32` payloads are
@@ -39,8 +39,9 @@
 //! length, the CRC, every section entry (known kind and layer, element type,
 //! `rows * cols * size == length`, alignment, bounds, order, no overlap,
 //! zero padding), that every required section is present exactly once, that
-//! all dimensions agree, and finally runs the same validation as
-//! [`QModel::new`] (accumulator bounds, requantization ranges, cell format).
+//! all dimensions agree, that every input and output scale is finite and
+//! positive, and finally runs the same validation as [`QModel::new`]
+//! (accumulator bounds, requantization ranges, cell format).
 //! After it succeeds, a step can fail only on the caller's buffer lengths.
 
 use crate::activation::TableKind;
@@ -266,6 +267,20 @@ pub enum BlobError {
         /// Layer index.
         layer: u8,
     },
+    /// A layer-info section holds an invalid value.
+    LayerInfo {
+        /// Layer index.
+        layer: u8,
+        /// What is wrong.
+        problem: &'static str,
+    },
+    /// A scale is not finite and positive.
+    Scale {
+        /// `InputScale` or `OutputScale`.
+        kind: SectionKind,
+        /// Index of the first bad value.
+        index: usize,
+    },
     /// Dimensions disagree between sections or with the header.
     Dims {
         /// Which relation failed.
@@ -298,6 +313,10 @@ impl core::fmt::Display for BlobError {
             BlobError::Missing { kind, layer } => write!(f, "section `{}` of layer {layer} is missing", kind.name()),
             BlobError::Duplicate { kind, layer } => {
                 write!(f, "section `{}` of layer {layer} appears more than once", kind.name())
+            }
+            BlobError::LayerInfo { layer, problem } => write!(f, "layer {layer} info: {problem}"),
+            BlobError::Scale { kind, index } => {
+                write!(f, "section `{}`[{index}] is not a finite positive scale", kind.name())
             }
             BlobError::Dims { what, expected, got } => write!(f, "{what}: expected {expected}, found {got}"),
         }
@@ -589,6 +608,16 @@ fn scales<'a>(
     RowScales::new(m, s)
 }
 
+/// Puts the real layer index into an accumulator-bound error (the layer
+/// constructors do not know where they sit; the head counts as the layer
+/// after the last).
+fn at_layer(e: Error, layer: usize) -> Error {
+    match e {
+        Error::AccumulatorBound { what, row, .. } => Error::AccumulatorBound { what, layer, row },
+        other => other,
+    }
+}
+
 impl From<BlobError> for Error {
     fn from(e: BlobError) -> Self {
         Error::Blob(e)
@@ -613,6 +642,9 @@ impl<'a> Blob<'a> {
             return Err(BlobError::Length { header: header.total_len, got: bytes.len() }.into());
         }
         let n = header.sections as usize;
+        if n > MAX_SECTIONS {
+            return Err(BlobError::Header { field: "section count", value: n as u32 }.into());
+        }
         let data_start = HEADER_LEN + n * ENTRY_LEN;
         let crc_at = bytes.len().checked_sub(4).filter(|c| *c >= data_start);
         let Some(crc_at) = crc_at else {
@@ -623,9 +655,6 @@ impl<'a> Blob<'a> {
         let computed = CRC.checksum(body);
         if stored != computed {
             return Err(BlobError::Crc { stored, computed }.into());
-        }
-        if n > MAX_SECTIONS {
-            return Err(BlobError::Header { field: "section count", value: n as u32 }.into());
         }
         let mut found = Found { bytes, entries: [None; MAX_SECTIONS] };
         let mut end = data_start;
@@ -679,10 +708,13 @@ impl<'a> Blob<'a> {
             if !(1..=MAX_DIM as i32 / 4).contains(&h) {
                 return Err(BlobError::Dims { what: "layer hidden size", expected: 1, got: h as u32 }.into());
             }
-            if !(0..=31).contains(&frac) || zero != 0 {
+            if !(0..=header.cell.max_frac() as i32).contains(&frac) {
                 return Err(
-                    BlobError::Section { index: k as usize, problem: "layer info has a bad cell format" }.into()
+                    BlobError::LayerInfo { layer: k, problem: "cell fractional bits exceed the cell width" }.into()
                 );
+            }
+            if zero != 0 {
+                return Err(BlobError::LayerInfo { layer: k, problem: "reserved word is not 0" }.into());
             }
             let (xu, hu) = (x as u32, h as u32);
             let rows = 4 * hu;
@@ -691,7 +723,8 @@ impl<'a> Blob<'a> {
             let bias = found.i32s(SectionKind::LayerBias, k, rows, 1)?;
             let rq_x = scales(&found, SectionKind::LayerRqXMult, SectionKind::LayerRqXShift, k, rows)?;
             let rq_h = scales(&found, SectionKind::LayerRqHMult, SectionKind::LayerRqHShift, k, rows)?;
-            let layer = QLayer::new(xu as usize, hu as usize, w_x, w_h, bias, rq_x, rq_h, frac as u8)?;
+            let layer = QLayer::new(xu as usize, hu as usize, w_x, w_h, bias, rq_x, rq_h, frac as u8)
+                .map_err(|e| at_layer(e, k as usize))?;
             layers.push(layer).map_err(|_| Error::LayerCount { got: header.layers as usize })?;
             prev = hu;
         }
@@ -700,7 +733,10 @@ impl<'a> Blob<'a> {
             let w = found.weights(header.scheme, SectionKind::HeadW, 0, out, prev)?;
             let bias = found.i32s(SectionKind::HeadBias, 0, out, 1)?;
             let rq = scales(&found, SectionKind::HeadRqMult, SectionKind::HeadRqShift, 0, out)?;
-            Some(QHead::new(prev as usize, out as usize, w, bias, rq)?)
+            Some(
+                QHead::new(prev as usize, out as usize, w, bias, rq)
+                    .map_err(|e| at_layer(e, header.layers as usize))?,
+            )
         } else {
             if out != prev {
                 return Err(
@@ -711,6 +747,11 @@ impl<'a> Blob<'a> {
         };
         let input_scale = found.f32s(SectionKind::InputScale, header.input as u32)?;
         let output_scale = found.f32s(SectionKind::OutputScale, out)?;
+        for (kind, values) in [(SectionKind::InputScale, input_scale), (SectionKind::OutputScale, output_scale)] {
+            if let Some(index) = values.iter().position(|v| !(v.is_finite() && *v > 0.0)) {
+                return Err(BlobError::Scale { kind, index }.into());
+            }
+        }
         let model = QModel::new(&layers, head, header.scheme, header.cell, header.table)?;
         let words = state_words_for(layers.iter().map(|l| l.hidden()), header.scheme, header.cell);
         if words != header.state_words as usize {

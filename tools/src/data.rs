@@ -252,6 +252,9 @@ pub fn write_csv_streaming(
     Ok(written)
 }
 
+/// Most feature columns a data file may have.
+const MAX_COLUMNS: usize = 1 << 16;
+
 /// The input kinds, chosen by extension.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum Kind {
@@ -545,6 +548,10 @@ fn npy_rows(
     if shape.rows == 0 {
         bail!("{name} has no data rows (shape {shape_text})");
     }
+    // A model input has at most 65,536 features (the blob's dimension limit).
+    if shape.cols > MAX_COLUMNS {
+        bail!("{name} has {} feature columns (shape {shape_text}); at most {MAX_COLUMNS} are supported", shape.cols);
+    }
     // Fortran order stores column after column; it only matches row-major
     // order when there is one row or one column.
     if npy.order() == npyz::Order::Fortran && shape.rows > 1 && shape.cols > 1 {
@@ -568,7 +575,8 @@ fn npy_rows(
 
     // Catch a truncated file before streaming any of it.
     let header_bytes = consumed.get();
-    if let (Some(len), Some(data)) = (file_len, rows.checked_mul(cols).and_then(|n| n.checked_mul(item_bytes))) {
+    if let Some(len) = file_len {
+        let data = rows.checked_mul(cols).and_then(|n| n.checked_mul(item_bytes)).unwrap_or(u64::MAX);
         let have = len.saturating_sub(header_bytes);
         if have < data {
             bail!(

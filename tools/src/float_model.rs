@@ -108,8 +108,11 @@ impl FloatModelData {
         }
         for (row, b) in l0.w_x.chunks_exact_mut(l0.input).zip(l0.b.iter_mut()) {
             let mut shift = 0.0f64;
-            for ((w, m), s) in row.iter_mut().zip(mean).zip(std) {
+            for (c, ((w, m), s)) in row.iter_mut().zip(mean).zip(std).enumerate() {
                 let wn = *w as f64 / *s as f64;
+                if !(wn as f32).is_finite() {
+                    bail!("norm.std[{c}] = {s:e} is too small: folding it overflows a layer-0 weight");
+                }
                 shift += wn * *m as f64;
                 *w = wn as f32;
             }

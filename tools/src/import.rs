@@ -433,11 +433,24 @@ fn load_safetensors(path: &Path) -> Result<Store> {
     let json: serde_json::Value =
         serde_json::from_slice(&header).map_err(|e| anyhow!("not a valid safetensors file (corrupt header): {e}"))?;
     let obj = json.as_object().ok_or_else(|| anyhow!("not a valid safetensors file: header is not a JSON object"))?;
+    let mut data_end = 0u64;
     for (name, info) in obj.iter().filter(|(k, _)| k.as_str() != "__metadata__") {
         if let Some(shape) = info.get("shape").and_then(|s| s.as_array()) {
             let dims: Vec<u64> = shape.iter().map(|d| d.as_u64().unwrap_or(u64::MAX)).collect();
             checked_elements(name, &dims)?;
         }
+        if let Some(end) = info.get("data_offsets").and_then(|o| o.get(1)).and_then(|e| e.as_u64()) {
+            data_end = data_end.max(end);
+        }
+    }
+    // The file must be exactly header + data: refuse a mismatch before
+    // reading (a huge or sparse file is never loaded).
+    let expected = data_end.saturating_add(8).saturating_add(n);
+    if expected != len {
+        bail!(
+            "not a valid safetensors file (corrupt or truncated, or padded): the header describes {expected} bytes, \
+             the file has {len}"
+        );
     }
     f.seek(SeekFrom::Start(0)).context("cannot read")?;
     let mut buf = Vec::with_capacity(usize::try_from(len)?);
@@ -695,6 +708,15 @@ fn parse_lapwing(name: &str) -> Option<(usize, &str)> {
         return None;
     }
     Some((k.parse().ok()?, leaf))
+}
+
+/// Refuses a layer index beyond what the core runs, before anything is
+/// sized by it.
+fn check_layer_index(name: &str, k: usize) -> Result<()> {
+    if k >= lapwing::MAX_LAYERS {
+        bail!("tensor `{name}`: layer index {k}, but at most {} layers are supported", lapwing::MAX_LAYERS);
+    }
+    Ok(())
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -977,6 +999,11 @@ impl Builder<'_> {
                 list_names(&unknown)
             );
         }
+        for n in self.store.entries.keys() {
+            if let Some((k, _)) = parse_lapwing(n) {
+                check_layer_index(n, k)?;
+            }
+        }
         let count = self.store.entries.keys().filter_map(|n| parse_lapwing(n)).map(|(k, _)| k + 1).max().unwrap_or(0);
         if count == 0 {
             bail!("missing tensor `layers.0.w_x` (layer 0 input weights), expected by the lapwing layout");
@@ -1038,6 +1065,9 @@ impl Builder<'_> {
         }
         if let Some((n, _)) = mine.iter().find(|(_, p)| p.kind == SplitKind::WeightHr) {
             bail!("tensor `{n}` is an LSTM projection (proj_size > 0), which Lapwing does not support");
+        }
+        for (n, p) in &mine {
+            check_layer_index(n, p.layer)?;
         }
         let count = mine.iter().map(|(_, p)| p.layer + 1).max().unwrap_or(0).max(1);
         let name = |leaf: &str, k: usize| join(&prefix, &format!("{leaf}_l{k}"));

@@ -110,7 +110,7 @@ enum NormArg {
     None,
 }
 
-#[derive(Clone, Copy, Debug, ValueEnum)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
 enum RangeArg {
     /// Largest magnitude seen (never clips calibration data).
     Minmax,
@@ -124,10 +124,10 @@ struct ModelArgs {
     /// Tensor layout of the float model (detected when omitted).
     #[arg(long, value_enum, help_heading = "Float model")]
     layout: Option<LayoutArg>,
-    /// Name prefix of the LSTM tensors in the split layout (found when omitted).
+    /// Name prefix of the LSTM tensors (split layout) or layer groups (fused layout); found when omitted.
     #[arg(long, help_heading = "Float model")]
     prefix: Option<String>,
-    /// Name prefix of the dense head's tensors in the split layout (found when omitted).
+    /// Name prefix of the dense head's tensors (split or fused layout); found when omitted.
     #[arg(long, help_heading = "Float model")]
     head_prefix: Option<String>,
     /// Input normalization folded into layer 0 before quantizing.
@@ -295,6 +295,12 @@ fn table_kind(t: TableArg) -> TableKind {
 }
 
 fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
+    if !(a.headroom.is_finite() && a.headroom >= 1.0) {
+        anyhow::bail!("--headroom {} must be a number >= 1", a.headroom);
+    }
+    if a.range == RangeArg::Percentile && !(a.percentile > 0.0 && a.percentile <= 100.0) {
+        anyhow::bail!("--percentile {} must be in (0, 100]", a.percentile);
+    }
     let method = match a.range {
         RangeArg::Minmax => RangeMethod::MinMax,
         RangeArg::Percentile => RangeMethod::Percentile(a.percentile),
@@ -346,7 +352,8 @@ fn range_name(m: RangeMethod) -> String {
 }
 
 fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
-    let model = if pipeline::is_blob(&a.model) {
+    let lwq = a.model.extension().is_some_and(|e| e.eq_ignore_ascii_case("lwq"));
+    let model = if lwq || pipeline::is_blob(&a.model) {
         Runnable::Blob(LoadedBlob::read(&a.model)?)
     } else {
         let norm = a.model_args.norm();

@@ -91,7 +91,12 @@ pub fn prepare(
         NormSource::File => imported.norm.clone(),
         NormSource::Data => {
             let Some(p) = data_path else { bail!("normalization from data needs a data file") };
-            Some(data_normalization(p, progress)?)
+            let n = data_normalization(p, progress)?;
+            let want = imported.model.input_len();
+            if n.mean.len() != want {
+                bail!("{}: has {} feature columns but the model takes {want} inputs", p.display(), n.mean.len());
+            }
+            Some(n)
         }
     };
     let mut model = imported.model.clone();

@@ -140,3 +140,41 @@ proptest! {
         check_never_panics(&b);
     }
 }
+
+/// Finds a section's payload offset in a valid blob.
+fn section_offset(bytes: &[u8], kind: lapwing::model::SectionKind, layer: u8) -> usize {
+    let a = AlignedBytes::from_bytes(bytes);
+    let blob = Blob::parse(a.bytes()).expect("valid");
+    let s = blob.sections().find(|s| s.kind == kind && s.layer == layer).expect("section");
+    s.offset as usize
+}
+
+#[test]
+fn resealed_bad_values_get_their_own_errors() {
+    use lapwing::model::{BlobError, SectionKind};
+    use lapwing::Error;
+    let good = small_blob();
+    let parse = |b: &[u8]| Blob::parse(AlignedBytes::from_bytes(b).bytes()).map(|_| ()).unwrap_err();
+    // A zero, negative or NaN scale (found in review: `run` printed NaN).
+    for (kind, v) in
+        [(SectionKind::InputScale, 0.0f32), (SectionKind::OutputScale, f32::NAN), (SectionKind::InputScale, -1.0)]
+    {
+        let mut b = good.clone();
+        let at = section_offset(&good, kind, 0) + 4;
+        b[at..at + 4].copy_from_slice(&v.to_le_bytes());
+        reseal(&mut b);
+        assert_eq!(parse(&b), Error::Blob(BlobError::Scale { kind, index: 1 }), "{kind:?} = {v}");
+    }
+    // Layer 1's cell format beyond c16's 15 bits names layer 1.
+    let mut b = good.clone();
+    let at = section_offset(&good, SectionKind::LayerInfo, 1) + 8;
+    b[at..at + 4].copy_from_slice(&40i32.to_le_bytes());
+    reseal(&mut b);
+    assert!(matches!(parse(&b), Error::Blob(BlobError::LayerInfo { layer: 1, .. })), "{}", parse(&b));
+    // A section count beyond the format's maximum is refused before any
+    // arithmetic on it.
+    let mut b = good.clone();
+    b[18..20].copy_from_slice(&u16::MAX.to_le_bytes());
+    reseal(&mut b);
+    assert_eq!(parse(&b), Error::Blob(BlobError::Header { field: "section count", value: 65535 }));
+}

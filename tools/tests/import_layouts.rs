@@ -561,3 +561,29 @@ fn oversized_tensors_are_refused_before_reading_them() {
     let e = import_err(&npy_dir, &ImportOptions::default());
     assert_has(&e, &["tensor `weight_ih_l0`", "[70000, 1000]", "2^26"]);
 }
+
+#[test]
+fn layer_indices_beyond_the_core_limit_are_refused_before_allocating() {
+    // Found in review: `layers.1000000000000.b` sized a Vec by the index and
+    // aborted the process.
+    let dir = tempfile::tempdir().unwrap();
+    let mut t = Tensors::new();
+    t.insert("layers.0.w_x".into(), f32_tensor(&[4, 1], &[0.0; 4]));
+    t.insert("layers.1000000000000.b".into(), f32_tensor(&[4], &[0.0; 4]));
+    let p = write_tensors(dir.path(), "huge_index.safetensors", &t);
+    assert_has(&import_err(&p, &ImportOptions::default()), &["huge_index.safetensors", "layer index 1000000000000"]);
+    let mut t = split_tensors();
+    t.insert("rnn.weight_ih_l99999999999999999".into(), f32_tensor(&[4, 1], &[0.0; 4]));
+    let p = write_tensors(dir.path(), "huge_split.safetensors", &t);
+    assert_has(&import_err(&p, &ImportOptions::default()), &["huge_split.safetensors", "layer index"]);
+}
+
+#[test]
+fn a_safetensors_file_longer_than_its_header_says_is_refused_unread() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = write_tensors(dir.path(), "padded.safetensors", &split_tensors());
+    let f = std::fs::OpenOptions::new().append(true).open(&p).unwrap();
+    // A sparse 1 GiB tail: refused from the header alone, never read.
+    f.set_len(f.metadata().unwrap().len() + (1 << 30)).unwrap();
+    assert_has(&import_err(&p, &ImportOptions::default()), &["padded.safetensors", "header describes"]);
+}

@@ -227,6 +227,26 @@ fn bad_inputs_exit_2_with_one_line_and_no_output() {
     refuses(&["run", &b, "--data", &three, "-o", &csv_s], &csv_out, &["three.csv", "4 inputs"]);
     refuses(&["run", &b, "--data", &nonnum, "-o", &csv_s], &csv_out, &["nonnum.csv", "line 3"]);
     refuses(&["run", &model, "--data", &empty, "-o", &csv_s], &csv_out, &["empty.csv"]);
+    // Option values are checked before any work, naming the flag.
+    refuses(&["quantize", &model, "--calib", &data, "-o", &out_s, "--headroom", "0.5"], &out, &["--headroom"]);
+    refuses(
+        &["quantize", &model, "--calib", &data, "-o", &out_s, "--range", "percentile", "--percentile", "0"],
+        &out,
+        &["--percentile"],
+    );
+    // --norm data with a data file of the wrong width names the data file.
+    let three_rows = write("three_rows.csv", "a,b,c\n1,2,3\n2,3,5\n");
+    refuses(
+        &["quantize", &model, "--calib", &three_rows, "--norm", "data", "-o", &out_s],
+        &out,
+        &["three_rows.csv", "4 inputs"],
+    );
+    // A .lwq with damaged magic is reported as a bad blob, not an unknown file type.
+    let mut bad_magic = std::fs::read(&blob).unwrap();
+    bad_magic[0] = b'X';
+    let bm = d.join("magic.lwq");
+    std::fs::write(&bm, &bad_magic).unwrap();
+    refuses(&["run", &bm.display().to_string(), "--data", &data, "-o", &csv_s], &csv_out, &["magic.lwq", "magic"]);
     // A failed run leaves an existing output untouched.
     std::fs::write(&csv_out, "keep").unwrap();
     let o = lapwing(&["run", &b, "--data", &nonnum, "-o", &csv_s]);
