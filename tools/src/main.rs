@@ -7,11 +7,13 @@ use clap::{Parser, Subcommand, ValueEnum};
 use lapwing::activation::TableKind;
 use lapwing::quant::{CellWidth, Scheme};
 use lapwing_tools::blob::{encode, LoadedBlob};
+use lapwing_tools::budget::Budget;
 use lapwing_tools::calibrate::RangeMethod;
 use lapwing_tools::import::{ImportOptions, Layout};
 use lapwing_tools::pipeline::{self, NormSource, RunValues, Runnable};
 use lapwing_tools::quantize::{quantize, QuantOptions};
-use lapwing_tools::{codegen, example, inspect, output};
+use lapwing_tools::report::{self, ReportOptions};
+use lapwing_tools::{codegen, data, example, inspect, output, plot, sweep};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
@@ -32,10 +34,10 @@ enum Command {
     Quantize(QuantizeArgs),
     /// Run a float model or a blob over data step by step and write the outputs as CSV.
     Run(RunArgs),
-    /// Report float vs quantized error on the same data (not implemented yet).
-    Report(Planned),
-    /// Sweep schemes and options against a budget (not implemented yet).
-    Sweep(Planned),
+    /// Report float vs quantized error on the same data, tensor by tensor; check an error budget.
+    Report(ReportArgs),
+    /// Quantize with every scheme, cell and table; report each; recommend the smallest within budget.
+    Sweep(SweepArgs),
     /// Show what is in a blob: scheme, shapes, sections, flash, RAM, work per step.
     Inspect(InspectArgs),
     /// Run the fixed-point anomaly detector and print alarms (not implemented yet).
@@ -211,6 +213,73 @@ struct RunArgs {
     norm_data: Option<PathBuf>,
 }
 
+/// Options of `report`.
+#[derive(clap::Args, Debug)]
+struct ReportArgs {
+    /// The device blob (.lwq).
+    blob: PathBuf,
+    /// The float model the blob was made from (.safetensors, .npz, .npy directory).
+    #[arg(long = "float", help_heading = "Input")]
+    float_model: PathBuf,
+    /// Data to compare on: CSV with a header, or .npy [T, X] (ideally not the calibration data).
+    #[arg(long, help_heading = "Input")]
+    data: PathBuf,
+    #[command(flatten)]
+    model_args: ModelArgs,
+    /// Data for --norm data (the calibration data the blob was made from).
+    #[arg(long, help_heading = "Float model")]
+    norm_data: Option<PathBuf>,
+    /// Error budget (TOML): exit status 1 when a limit is violated.
+    #[arg(long, help_heading = "Checks")]
+    budget: Option<PathBuf>,
+    /// Write the report as JSON to this file (`-` for standard output).
+    #[arg(long, help_heading = "Output")]
+    json: Option<PathBuf>,
+    /// Write SVG plots (output trace, error over time, gate error histograms) into this directory.
+    #[arg(long, help_heading = "Output")]
+    plot: Option<PathBuf>,
+    /// Steps per window of the error-over-time figures (default: a hundredth of the data).
+    #[arg(long, help_heading = "Output")]
+    window: Option<usize>,
+    /// Window of the output trace plot as START:LEN in steps (default: up to 500 steps of the worst window).
+    #[arg(long, value_parser = parse_trace, help_heading = "Output")]
+    trace: Option<(usize, usize)>,
+}
+
+fn parse_trace(s: &str) -> Result<(usize, usize), String> {
+    let (a, b) = s.split_once(':').ok_or("expected START:LEN, e.g. 1000:500")?;
+    let start = a.trim().parse().map_err(|_| format!("START `{a}` is not a step number"))?;
+    let len: usize = b.trim().parse().map_err(|_| format!("LEN `{b}` is not a number of steps"))?;
+    if len == 0 {
+        return Err("LEN must be at least 1".into());
+    }
+    Ok((start, len))
+}
+
+/// Options of `sweep`.
+#[derive(clap::Args, Debug)]
+struct SweepArgs {
+    /// Float model (.safetensors, .npz, .npy directory).
+    model: PathBuf,
+    /// Calibration data (normal running).
+    #[arg(long, help_heading = "Input")]
+    calib: PathBuf,
+    /// Data every configuration is reported on (ideally not the calibration data).
+    #[arg(long, help_heading = "Input")]
+    data: PathBuf,
+    #[command(flatten)]
+    model_args: ModelArgs,
+    /// Headroom factor above the calibrated range (>= 1).
+    #[arg(long, default_value_t = 1.25, help_heading = "Calibration")]
+    headroom: f32,
+    /// Error budget (TOML): rows within it are marked and the smallest is recommended.
+    #[arg(long, help_heading = "Checks")]
+    budget: Option<PathBuf>,
+    /// Write the sweep as JSON to this file (`-` for standard output).
+    #[arg(long, help_heading = "Output")]
+    json: Option<PathBuf>,
+}
+
 /// Options of `inspect`.
 #[derive(clap::Args, Debug)]
 struct InspectArgs {
@@ -251,6 +320,22 @@ struct DemoArgs {
     json: bool,
 }
 
+/// Writes to standard output; a closed pipe (`lapwing report ... | head`)
+/// ends the output quietly instead of panicking.
+fn emit(text: &str) {
+    use std::io::Write;
+    let mut out = std::io::stdout().lock();
+    let _ = out.write_all(text.as_bytes()).and_then(|()| out.flush());
+}
+
+macro_rules! out {
+    ($($arg:tt)*) => { emit(&format!($($arg)*)) };
+}
+
+macro_rules! outln {
+    ($($arg:tt)*) => { emit(&(format!($($arg)*) + "\n")) };
+}
+
 fn main() -> ExitCode {
     let cli = Cli::parse();
     match run(cli) {
@@ -270,8 +355,8 @@ fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Fit(_) => planned("fit", "training arrives with the anomaly-detection work"),
         Command::Quantize(args) => quantize_cmd(&args),
         Command::Run(args) => run_cmd(&args),
-        Command::Report(_) => planned("report", "arrives with the error-report work"),
-        Command::Sweep(_) => planned("sweep", "arrives with the error-report work"),
+        Command::Report(args) => report_cmd(&args),
+        Command::Sweep(args) => sweep_cmd(&args),
         Command::Inspect(args) => inspect_cmd(&args),
         Command::Detect(_) => planned("detect", "arrives with the anomaly-detection work"),
         Command::Codegen(args) => codegen_cmd(&args),
@@ -312,19 +397,19 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
         headroom: a.headroom,
     };
     let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), a.model_args.norm(), Some(&a.calib), true)?;
-    println!("{}", prep.imported.summary());
+    outln!("{}", prep.imported.summary());
     if prep.folded.is_some() {
-        println!("input normalization folded into layer 0 ({})", norm_origin(a.model_args.norm(), &a.calib));
+        outln!("input normalization folded into layer 0 ({})", norm_origin(a.model_args.norm(), &a.calib));
     }
     let ranges = pipeline::calibrate_file(&prep.model, &a.calib, method, true)?;
-    println!("calibrated on {} rows of {} ({})", ranges.steps, a.calib.display(), range_name(method));
+    outln!("calibrated on {} rows of {} ({})", ranges.steps, a.calib.display(), range_name(method));
     let q = quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?;
     let bytes = encode(&q)?;
     output::write_atomic(&a.output, &bytes)?;
     let blob = LoadedBlob::read(&a.output)?;
     let info = inspect::inspect(&blob.parse()?);
     let f = &info.footprint;
-    println!(
+    outln!(
         "wrote {}: scheme {} {}, {} B blob + {} B table flash, {} B RAM, {} MACs per step",
         a.output.display(),
         info.scheme,
@@ -356,12 +441,7 @@ fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
     let model = if lwq || pipeline::is_blob(&a.model) {
         Runnable::Blob(LoadedBlob::read(&a.model)?)
     } else {
-        let norm = a.model_args.norm();
-        if norm == NormSource::Data && a.norm_data.is_none() {
-            anyhow::bail!("--norm data needs --norm-data PATH (the data the normalization was computed from)");
-        }
-        let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), norm, a.norm_data.as_deref(), true)?;
-        Runnable::Float(Box::new(prep))
+        Runnable::Float(Box::new(float_for(&a.model, &a.model_args, a.norm_data.as_deref())?))
     };
     let values = if a.int { RunValues::Int } else { RunValues::Real };
     let n = pipeline::run_file(&model, &a.data, &a.output, values, true)?;
@@ -369,13 +449,100 @@ fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
+/// Writes `value` as JSON to `path` (atomically) or to stdout for `-`.
+fn write_json(path: &Path, value: &impl serde::Serialize) -> anyhow::Result<()> {
+    let text = serde_json::to_string_pretty(value)? + "\n";
+    if path.as_os_str() == "-" {
+        out!("{text}");
+        Ok(())
+    } else {
+        output::write_text(path, &text)
+    }
+}
+
+fn float_for(model: &Path, args: &ModelArgs, norm_data: Option<&Path>) -> anyhow::Result<pipeline::Prepared> {
+    let norm = args.norm();
+    if norm == NormSource::Data && norm_data.is_none() {
+        anyhow::bail!("--norm data needs --norm-data PATH (the data the normalization was computed from)");
+    }
+    pipeline::prepare(model, &args.import_options(), norm, norm_data, true)
+}
+
+fn report_cmd(a: &ReportArgs) -> anyhow::Result<ExitCode> {
+    // Everything that can be refused is checked before the long run.
+    let budget = a.budget.as_deref().map(Budget::load).transpose()?;
+    if let Some(dir) = &a.plot {
+        if !dir.is_dir() {
+            anyhow::bail!("--plot {}: the directory does not exist", dir.display());
+        }
+    }
+    if a.window == Some(0) {
+        anyhow::bail!("--window must be at least 1 step");
+    }
+    let blob = LoadedBlob::read(&a.blob)?;
+    let parsed = blob.parse()?;
+    let prep = float_for(&a.float_model, &a.model_args, a.norm_data.as_deref())?;
+    let opts = ReportOptions { window: a.window, trace: a.trace };
+    let mut report = report::report_file(&prep.model, &parsed, &a.data, &opts, true)?;
+    if let Some(b) = &budget {
+        report.budget = b.check(&report)?;
+    }
+    let to_stdout = a.json.as_deref().is_some_and(|p| p.as_os_str() == "-");
+    if !to_stdout {
+        out!("{}", report.to_text());
+    }
+    if let Some(p) = &a.json {
+        write_json(p, &report)?;
+    }
+    if let Some(dir) = &a.plot {
+        let target = budget.as_ref().and_then(|b| b.output_sqnr_min_db);
+        let written = plot::write_plots(&report, dir, target)?;
+        if !to_stdout {
+            for p in written {
+                outln!("plot: {}", p.display());
+            }
+        }
+    }
+    Ok(if report.budget.passed { ExitCode::SUCCESS } else { ExitCode::from(1) })
+}
+
+fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
+    if !(a.headroom.is_finite() && a.headroom >= 1.0) {
+        anyhow::bail!("--headroom {} must be a number >= 1", a.headroom);
+    }
+    let budget = a.budget.as_deref().map(Budget::load).transpose()?;
+    let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), a.model_args.norm(), Some(&a.calib), true)?;
+    let ranges = pipeline::calibrate_file(&prep.model, &a.calib, RangeMethod::MinMax, true)?;
+    let data = data::read(&a.data, true)?;
+    data.expect_features(prep.model.input_len())?;
+    let total = sweep::configurations(a.headroom).len() as u64;
+    let bar = indicatif::ProgressBar::new(total).with_style(
+        indicatif::ProgressStyle::with_template("{msg} [{bar:30}] {pos}/{len} configurations")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    bar.set_message("sweep");
+    let result = sweep::sweep(&prep.model, &ranges, &data.rows, a.headroom, budget.as_ref(), |done, _| {
+        bar.set_position(done as u64)
+    });
+    bar.finish_and_clear();
+    let result = result?;
+    let to_stdout = a.json.as_deref().is_some_and(|p| p.as_os_str() == "-");
+    if !to_stdout {
+        out!("{}", result.to_text());
+    }
+    if let Some(p) = &a.json {
+        write_json(p, &result)?;
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
 fn inspect_cmd(a: &InspectArgs) -> anyhow::Result<ExitCode> {
     let blob = LoadedBlob::read(&a.blob)?;
     let info = inspect::inspect(&blob.parse()?);
     if a.json {
-        println!("{}", serde_json::to_string_pretty(&info)?);
+        outln!("{}", serde_json::to_string_pretty(&info)?);
     } else {
-        print!("{}", info.to_text());
+        out!("{}", info.to_text());
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -386,7 +553,7 @@ fn codegen_cmd(a: &CodegenArgs) -> anyhow::Result<ExitCode> {
     let name = a.blob.file_name().map_or_else(|| a.blob.display().to_string(), |n| n.to_string_lossy().into_owned());
     let src = codegen::module(blob.bytes(), &info, &name);
     output::write_text(&a.output, &src)?;
-    println!(
+    outln!(
         "wrote {} ({} B blob, {} state words)",
         a.output.display(),
         info.footprint.blob_bytes,
@@ -405,11 +572,12 @@ fn demo(args: &DemoArgs) -> anyhow::Result<ExitCode> {
         table: table_kind(args.table),
         ..Default::default()
     };
-    let summary = example::summarize(&opts, example::CALIB_STEPS, args.steps)?;
+    let report = example::run(&opts, example::CALIB_STEPS, args.steps)?;
     if args.json {
-        println!("{}", serde_json::to_string_pretty(&summary)?);
+        outln!("{}", serde_json::to_string_pretty(&report)?);
     } else {
-        print!("{}", summary.to_table());
+        outln!("Built-in example: random LSTM X=4 H=32 + head Y=4 on a random-walk signal (invented data)");
+        out!("{}", report.to_text());
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -285,17 +285,21 @@ fn render_gate_hist(report: &Report) -> Result<String> {
     let max_count = all.clone().flat_map(|h| h.counts.iter().copied()).max().unwrap_or(0);
     let min_pos = all.clone().flat_map(|h| h.counts.iter().copied()).filter(|&c| c > 0).min().unwrap_or(0);
     let log = min_pos > 0 && max_count / min_pos > 1000;
-    // Bins: the report's layout, or wider if a histogram has more bins.
+    // Bins: the report's layout, or wider if a histogram has more bins; all
+    // histograms of a report share one bin width.
+    let bin = all.clone().map(|h| h.bin_lsb).max().unwrap_or(1).max(1);
     let bins = all.map(|h| h.counts.len()).max().unwrap_or(0).max((2 * HIST_HALF + 1) as usize);
-    let x0 = -(HIST_HALF as f64) - 0.5;
-    let x1 = x0 + bins as f64;
+    let w = bin as f64;
+    let x0 = (-(HIST_HALF as f64) - 0.5) * w;
+    let x1 = x0 + bins as f64 * w;
 
     let title = format!("Gate error histograms ({})", scheme_name(report));
     let subtitle = format!(
-        "{}, {} compared steps; bins of 1 LSB of Q0.15; the orange outer bins also count \
-         everything beyond +/-{HIST_HALF} LSB",
+        "{}, {} compared steps; bins of {bin} LSB of Q0.15; the orange outer bins also count \
+         everything beyond +/-{} LSB",
         plural(layers, "layer"),
-        report.steps
+        report.steps,
+        HIST_HALF * bin as i64
     );
     let y_desc = if log { "count (log scale)" } else { "count" };
 
@@ -402,10 +406,11 @@ where
         .draw()
         .map_err(draw_err)?;
     let last = counts.len().saturating_sub(1);
+    let w = (x1 - x0) / counts.len().max(1) as f64;
     let bars = counts.iter().enumerate().filter(|(_, &c)| c > 0).map(|(i, &c)| {
-        let x = x0 + i as f64 + 0.5;
+        let x = x0 + (i as f64 + 0.5) * w;
         let color = if i == 0 || i == last { EDGE_BAR_COLOR } else { BAR_COLOR };
-        Rectangle::new([(x - 0.45, base), (x + 0.45, c as f64)], color.filled())
+        Rectangle::new([(x - 0.45 * w, base), (x + 0.45 * w, c as f64)], color.filled())
     });
     chart.draw_series(bars).map_err(draw_err)?;
     if counts.iter().all(|&c| c == 0) {
@@ -626,7 +631,7 @@ mod tests {
     use crate::report::ErrorHistogram;
 
     fn hist(f: impl Fn(i64) -> u64) -> ErrorHistogram {
-        ErrorHistogram { counts: (-HIST_HALF..=HIST_HALF).map(f).collect() }
+        ErrorHistogram { counts: (-HIST_HALF..=HIST_HALF).map(f).collect(), bin_lsb: 1 }
     }
 
     fn synthetic() -> Report {
@@ -732,8 +737,8 @@ mod tests {
                     sqnr_windows: vec![(0, f64::INFINITY)],
                     gate_hist: vec![[
                         hist(|_| 0),
-                        ErrorHistogram { counts: vec![] },
-                        ErrorHistogram { counts: vec![7] },
+                        ErrorHistogram { counts: vec![], bin_lsb: 1 },
+                        ErrorHistogram { counts: vec![7], bin_lsb: 1 },
                         hist(|_| 0),
                     ]],
                 },

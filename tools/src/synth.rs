@@ -67,3 +67,31 @@ pub fn random_walk(features: usize, steps: usize, seed: u64) -> Vec<Vec<f32>> {
         })
         .collect()
 }
+
+/// A stationary, bounded signal per feature: three sines of seeded
+/// frequencies and phases plus uniform noise, peak at most 1.6. Unlike
+/// [`random_walk`], a long stretch never leaves the range a shorter
+/// calibration stretch has seen, so it isolates quantization error from
+/// input clipping.
+pub fn sine_mix(features: usize, steps: usize, seed: u64) -> Vec<Vec<f32>> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let parts: Vec<[(f32, f32, f32); 3]> = (0..features)
+        .map(|_| {
+            std::array::from_fn(|i| {
+                let freq = rng.random_range(0.005f32..0.2) / (1 + i) as f32;
+                (0.5 / (1 + i) as f32, freq, rng.random_range(0.0..std::f32::consts::TAU))
+            })
+        })
+        .collect();
+    (0..steps)
+        .map(|t| {
+            parts
+                .iter()
+                .map(|p| {
+                    let tone: f32 = p.iter().map(|(a, f, ph)| a * (t as f32 * f + ph).sin()).sum();
+                    tone + rng.random_range(-0.1f32..0.1)
+                })
+                .collect()
+        })
+        .collect()
+}

@@ -1,0 +1,204 @@
+//! Precision sweep: quantize one float model with every scheme, cell width
+//! and activation table, report each on the same data, and recommend the
+//! smallest configuration (flash + RAM) that meets the budget.
+
+use crate::budget::Budget;
+use crate::calibrate::Ranges;
+use crate::float_model::FloatModelData;
+use crate::quantize::{quantize, QuantOptions};
+use crate::report::{report_quantized, Report, ReportOptions};
+use anyhow::{Context, Result};
+use lapwing::activation::TableKind;
+use lapwing::quant::{CellWidth, Scheme};
+use serde::Serialize;
+use std::fmt::Write as _;
+
+/// Every configuration the sweep tries, in order.
+pub fn configurations(headroom: f32) -> Vec<QuantOptions> {
+    let mut v = Vec::new();
+    for scheme in Scheme::ALL {
+        for cell in [CellWidth::C16, CellWidth::C32] {
+            for table in [TableKind::Compact, TableKind::Standard] {
+                v.push(QuantOptions { scheme, cell, table, headroom });
+            }
+        }
+    }
+    v
+}
+
+/// Instructions per step, estimated without running the firmware: two per
+/// multiply-accumulate, 40 per gate row (two requantizations, bias,
+/// saturation) and 80 per unit (four table lookups, the cell and hidden
+/// update). A rough model for ranking only; emulated measurements replace
+/// it once the firmware measurement exists.
+pub fn estimated_instructions(macs: usize, gate_rows: usize, units: usize) -> usize {
+    2 * macs + 40 * gate_rows + 80 * units
+}
+
+/// One configuration's figures.
+#[derive(Clone, Debug, Serialize)]
+pub struct SweepRow {
+    /// `w8a16-c16-standard`, ...
+    pub scheme: String,
+    /// Model data in flash (blob + activation table).
+    pub flash_bytes: usize,
+    /// State RAM.
+    pub ram_bytes: usize,
+    /// Multiply-accumulates per step.
+    pub macs_per_step: usize,
+    /// Instructions per step: an estimate (see [`estimated_instructions`]).
+    pub instructions_per_step_estimate: usize,
+    /// Head output SQNR, dB.
+    pub output_sqnr_db: f64,
+    /// Worst layer's hidden-state SQNR, dB.
+    pub hidden_sqnr_db: f64,
+    /// Output drift (first tenth minus last tenth SQNR), dB.
+    pub drift_db: f64,
+    /// Largest saturation rate over all tensors.
+    pub saturation_rate: f64,
+    /// Whether it meets the budget (true when there is no budget).
+    pub within_budget: bool,
+    /// Budget violations, one message each.
+    pub violations: Vec<String>,
+}
+
+/// The sweep's result.
+#[derive(Clone, Debug, Serialize)]
+pub struct Sweep {
+    /// Steps each configuration was reported on.
+    pub steps: usize,
+    /// Whether a budget was checked.
+    pub budget_checked: bool,
+    /// One row per configuration.
+    pub rows: Vec<SweepRow>,
+    /// Index into `rows` of the recommendation: the smallest flash + RAM
+    /// within budget (ties: higher output SQNR); `None` when none passes.
+    pub recommended: Option<usize>,
+}
+
+fn row_of(r: &Report, budget: Option<&Budget>) -> Result<SweepRow> {
+    let hidden =
+        r.tensors.iter().filter(|(n, _)| n.ends_with(".hidden")).map(|(_, t)| t.sqnr_db).fold(f64::INFINITY, f64::min);
+    let saturation = r.tensors.values().map(|t| t.saturation_rate).fold(0.0, f64::max);
+    let (within, violations) = match budget {
+        Some(b) => {
+            let res = b.check(r)?;
+            (res.passed, res.violations.into_iter().map(|v| v.message).collect())
+        }
+        None => (true, Vec::new()),
+    };
+    Ok(SweepRow {
+        scheme: r.scheme.clone(),
+        flash_bytes: r.footprint.flash_bytes,
+        ram_bytes: r.footprint.ram_bytes,
+        macs_per_step: r.footprint.macs_per_step,
+        instructions_per_step_estimate: 0,
+        output_sqnr_db: r.tensors.get("output").map_or(f64::NAN, |t| t.sqnr_db),
+        hidden_sqnr_db: hidden,
+        drift_db: r.drift.get("output").map_or(f64::NAN, |d| d.drift_db),
+        saturation_rate: saturation,
+        within_budget: within,
+        violations,
+    })
+}
+
+/// Runs the sweep: `ranges` come from one calibration of `model`; every
+/// configuration is reported on `rows`. `progress` is called after each
+/// configuration with (done, total).
+///
+/// # Errors
+/// A configuration that cannot be quantized or reported, or a budget that
+/// cannot be checked.
+pub fn sweep(
+    model: &FloatModelData,
+    ranges: &Ranges,
+    rows: &[Vec<f32>],
+    headroom: f32,
+    budget: Option<&Budget>,
+    mut progress: impl FnMut(usize, usize),
+) -> Result<Sweep> {
+    let configs = configurations(headroom);
+    let units: usize = model.layers.iter().map(|l| l.hidden).sum();
+    let mut out = Vec::with_capacity(configs.len());
+    for (i, opts) in configs.iter().enumerate() {
+        let name = format!("{}-{}-{}", opts.scheme.name(), opts.cell.name(), opts.table.name());
+        let q = quantize(model, ranges, opts).with_context(|| format!("configuration {name}"))?;
+        let r = report_quantized(model, &q, rows, &ReportOptions::default())
+            .with_context(|| format!("configuration {name}"))?;
+        let mut row = row_of(&r, budget)?;
+        row.instructions_per_step_estimate = estimated_instructions(r.footprint.macs_per_step, 4 * units, units);
+        out.push(row);
+        progress(i + 1, configs.len());
+    }
+    let recommended = out
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| r.within_budget)
+        .min_by(|(_, a), (_, b)| {
+            (a.flash_bytes + a.ram_bytes)
+                .cmp(&(b.flash_bytes + b.ram_bytes))
+                .then(b.output_sqnr_db.total_cmp(&a.output_sqnr_db))
+        })
+        .map(|(i, _)| i);
+    Ok(Sweep { steps: rows.len(), budget_checked: budget.is_some(), rows: out, recommended })
+}
+
+impl Sweep {
+    /// A readable table.
+    pub fn to_text(&self) -> String {
+        let mut s = String::new();
+        let _ = writeln!(
+            s,
+            "{:<22} {:>7} {:>6} {:>6} {:>12} {:>8} {:>8} {:>7} {:>9}  {}",
+            "configuration",
+            "flash B",
+            "RAM B",
+            "MACs",
+            "instr (est)",
+            "out dB",
+            "hid dB",
+            "drift",
+            "sat %",
+            if self.budget_checked { "budget" } else { "" }
+        );
+        for (i, r) in self.rows.iter().enumerate() {
+            let mark = if Some(i) == self.recommended { " <- recommended" } else { "" };
+            let budget = match (self.budget_checked, r.within_budget) {
+                (false, _) => "",
+                (true, true) => "pass",
+                (true, false) => "FAIL",
+            };
+            let _ = writeln!(
+                s,
+                "{:<22} {:>7} {:>6} {:>6} {:>12} {:>8.1} {:>8.1} {:>+7.2} {:>9.4}  {budget}{mark}",
+                r.scheme,
+                r.flash_bytes,
+                r.ram_bytes,
+                r.macs_per_step,
+                r.instructions_per_step_estimate,
+                r.output_sqnr_db,
+                r.hidden_sqnr_db,
+                r.drift_db,
+                100.0 * r.saturation_rate
+            );
+        }
+        let _ = writeln!(
+            s,
+            "\n{} steps per configuration. \"instr (est)\" is an estimate (2 per MAC + 40 per gate row + 80 per \
+             unit), not a measurement.",
+            self.steps
+        );
+        match (self.recommended, self.budget_checked) {
+            (Some(i), true) => {
+                let _ = writeln!(s, "recommended: {} (smallest flash + RAM within budget)", self.rows[i].scheme);
+            }
+            (Some(i), false) => {
+                let _ = writeln!(s, "smallest flash + RAM: {} (no budget given)", self.rows[i].scheme);
+            }
+            (None, _) => {
+                let _ = writeln!(s, "no configuration meets the budget");
+            }
+        }
+        s
+    }
+}
