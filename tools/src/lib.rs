@@ -1,17 +1,24 @@
 //! `lapwing-tools`: the host side of Lapwing.
 //!
 //! One module per job, each with typed options and results, so the CLI, the
-//! tests and the demo call the same functions:
-//! - [`float_model`]: owned float weights (what importers produce), input
-//!   normalization folding, views for the core's float reference;
-//! - [`calibrate`]: ranges observed by running the float model over data;
-//! - [`quantize`]: float model + ranges -> integer model (scheme `w8a16`),
-//!   with the accumulator bound check;
-//! - [`metrics`]: SQNR, RMSE, cosine similarity;
-//! - [`synth`]: seeded random models and signals for tests and the built-in
-//!   example;
-//! - [`compare`]: runs float and integer side by side on the same data;
-//! - [`example`]: the built-in quantize-and-compare example.
+//! tests and the demo call the same functions. In data-path order:
+//! - [`import`]: float weights from safetensors / npz / `.npy` directories in
+//!   three tensor layouts; [`float_model`]: the owned float model and
+//!   normalization folding;
+//! - [`data`]: CSV and `.npy` data, streamed;
+//! - [`calibrate`]: ranges observed by running the float model over data
+//!   (min/max or percentile);
+//! - [`quantize`]: float model + ranges -> integer model (`w8a16`, `w8a8`,
+//!   `w16a16`), with the accumulator bound check;
+//! - [`blob`]: the device blob (`.lwq`) encoder and aligned loading;
+//!   [`output`]: atomic output files;
+//! - [`pipeline`]: the file-to-file steps the CLI runs;
+//! - [`report`]: float vs device code on the same data, tensor by tensor,
+//!   with drift and footprint; [`metrics`]: SQNR, RMSE, cosine;
+//!   [`plot`]: its SVG figures; [`budget`]: the error budget a CI checks;
+//! - [`sweep`]: every scheme x cell x table against a budget;
+//! - [`inspect`]: what a blob holds; [`codegen`]: the firmware module;
+//! - [`synth`], [`example`]: seeded models and signals, the built-in example.
 //!
 //! The quantized path always runs the core's device code
 //! ([`lapwing::quant::QModel::step`]): what the host reports is what the chip

@@ -3,25 +3,16 @@
 //! and the bad inputs every command must refuse cleanly (exit status 2, one
 //! line naming the file and the problem, no output file left behind).
 
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+mod common;
+
+use common::*;
+use std::path::Path;
+use std::process::Output;
 
 #[rustfmt::skip]
 #[path = "../../examples/pipeline/model.rs"]
 #[allow(dead_code)]
 mod generated;
-
-fn root() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("..")
-}
-
-fn example(name: &str) -> String {
-    root().join("examples/pipeline").join(name).display().to_string()
-}
-
-fn lapwing(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_lapwing")).args(args).output().expect("run lapwing")
-}
 
 fn ok(out: &Output) -> String {
     assert!(out.status.success(), "failed: {}", String::from_utf8_lossy(&out.stderr));

@@ -2,24 +2,11 @@
 //! example: JSON keys, plots, budget exit codes (0 within, 1 violated, 2 bad
 //! input).
 
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+mod common;
 
-fn root() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("..")
-}
-
-fn example(name: &str) -> String {
-    root().join("examples/pipeline").join(name).display().to_string()
-}
-
-fn lapwing(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_lapwing")).args(args).output().expect("run lapwing")
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
-}
+use common::*;
+use std::path::Path;
+use std::process::Output;
 
 /// Quantizes the shipped example into `dir` with the given headroom.
 fn blob(dir: &Path, headroom: &str) -> String {
