@@ -206,6 +206,9 @@ struct RunArgs {
     /// Write the blob's raw int16 outputs instead of real values.
     #[arg(long, help_heading = "Output")]
     int: bool,
+    /// The data holds raw int16 device inputs (no scaling); implies --int.
+    #[arg(long, help_heading = "Input")]
+    raw_input: bool,
     #[command(flatten)]
     model_args: ModelArgs,
     /// Data for --norm data (the calibration data the blob was made from).
@@ -443,7 +446,11 @@ fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
     } else {
         Runnable::Float(Box::new(float_for(&a.model, &a.model_args, a.norm_data.as_deref())?))
     };
-    let values = if a.int { RunValues::Int } else { RunValues::Real };
+    let values = match (a.raw_input, a.int) {
+        (true, _) => RunValues::RawIo,
+        (false, true) => RunValues::Int,
+        (false, false) => RunValues::Real,
+    };
     let n = pipeline::run_file(&model, &a.data, &a.output, values, true)?;
     eprintln!("wrote {} rows to {}", n, a.output.display());
     Ok(ExitCode::SUCCESS)

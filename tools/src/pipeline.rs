@@ -141,14 +141,32 @@ pub fn is_blob(path: &Path) -> bool {
     std::fs::File::open(path).and_then(|mut f| f.read_exact(&mut magic)).is_ok() && magic == lapwing::model::MAGIC
 }
 
-/// How `run` writes values.
+/// How `run` reads inputs and writes outputs.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
 pub enum RunValues {
-    /// Real values (device integers times their scale for a blob).
+    /// Real values in and out (device integers times their scale for a blob).
     #[default]
     Real,
-    /// The device's raw `int16` outputs (blobs only), for bit-exact checks.
+    /// Real inputs, the device's raw `int16` outputs (blobs only).
     Int,
+    /// Raw `int16` device inputs (no scaling; values must be integers in
+    /// range) and raw outputs (blobs only): what firmware sees, for
+    /// bit-exact checks against a device.
+    RawIo,
+}
+
+/// Device integers given as numbers: each must be a whole number in the
+/// `int16` range.
+fn raw_ints(x: &[f32]) -> Result<Vec<i16>> {
+    x.iter()
+        .enumerate()
+        .map(|(i, v)| {
+            if v.fract() != 0.0 || *v < i16::MIN as f32 || *v > i16::MAX as f32 {
+                bail!("column {}: {v} is not an int16 device value (raw input)", i + 1);
+            }
+            Ok(*v as i16)
+        })
+        .collect()
 }
 
 /// Output column names: `y0..` for a head, `h0..` for the last hidden state.
@@ -179,8 +197,8 @@ pub fn run_file(
     };
     match model {
         Runnable::Float(p) => {
-            if values == RunValues::Int {
-                bail!("integer output needs a quantized blob, not a float model");
+            if values != RunValues::Real {
+                bail!("integer inputs or outputs need a quantized blob, not a float model");
             }
             let m = p.model.view()?;
             let mut state = vec![0.0f32; m.state_len()];
@@ -205,12 +223,15 @@ pub fn run_file(
             data::write_csv_streaming(out_path, &header, |sink| {
                 data::for_each_row(data_path, progress, |_, x, _| {
                     check(x.len(), m.input_len())?;
-                    let xi = input_to_int(x, blob.input_scale());
+                    let xi = match values {
+                        RunValues::RawIo => raw_ints(x)?,
+                        _ => input_to_int(x, blob.input_scale()),
+                    };
                     m.step(&mut state, &xi, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
                     for ((r, v), s) in row.iter_mut().zip(&out).zip(blob.output_scale()) {
                         *r = match values {
                             RunValues::Real => *v as f32 * s,
-                            RunValues::Int => *v as f32,
+                            RunValues::Int | RunValues::RawIo => *v as f32,
                         };
                     }
                     sink.push(&row)
