@@ -14,6 +14,8 @@
 //! - [`quant`]: the integer-only LSTM step (scheme `w8a16`, cell `c16`/`c32`).
 //! - [`model`]: the device blob (`.lwq`): zero-copy parse from flash with
 //!   every check done up front.
+//! - [`detect`]: streaming fixed-point anomaly scoring and alarms on the
+//!   prediction residual.
 //!
 //! ```
 //! use lapwing::quant::{CellWidth, QLayer, QModel, RowScales, Scheme, Weights};
@@ -49,6 +51,7 @@
 extern crate std;
 
 pub mod activation;
+pub mod detect;
 pub mod fixed_point;
 pub mod float;
 pub mod model;

@@ -13,7 +13,7 @@
 //!     11     1  layer count (1..=MAX_LAYERS)
 //!     12     2  input features X
 //!     14     2  output values (Y with a head, else the last H)
-//!     16     1  flags (bit 0: has a head; other bits 0)
+//!     16     1  flags (bit 0: has a head; bit 1: has a detector; others 0)
 //!     17     1  reserved (0)
 //!     18     2  section count
 //!     20     4  total length in bytes, CRC included
@@ -29,8 +29,9 @@
 //! Element types: 1 = i8, 2 = i16, 3 = i32, 4 = f32. Weight sections are
 //! i8, or i16 for `w16a16`. Section kinds are listed in
 //! [`SectionKind`]; every layer has all eight layer sections, the head
-//! sections appear exactly when the head flag is set, and the two scale
-//! sections always. The blob must start at a 4-byte aligned address (the
+//! sections appear exactly when the head flag is set, the two detector
+//! sections exactly when the detector flag is set (which needs a head that
+//! predicts every input), and the two scale sections always. The blob must start at a 4-byte aligned address (the
 //! generated Rust module guarantees it), so `i32` and `f32` payloads are
 //! borrowed in place, never copied.
 //!
@@ -45,6 +46,7 @@
 //! After it succeeds, a step can fail only on the caller's buffer lengths.
 
 use crate::activation::TableKind;
+use crate::detect::Detector;
 pub use crate::quant::Scheme;
 use crate::quant::{state_words_for, CellWidth, QHead, QLayer, QModel, RowScales, Weights};
 use crate::{Error, MAX_LAYERS};
@@ -134,6 +136,13 @@ pub enum SectionKind {
     InputScale = 32,
     /// `[out, 1]` f32: real value of one output LSB per output.
     OutputScale = 33,
+    /// `[1, 8]` i32: detector warm-up steps, EWMA shift, k, n, raise level,
+    /// clear level (`u32` bit patterns), 0, 0.
+    DetectorInfo = 48,
+    /// `[X, 4]` i32: per feature the requantizations `(a_mult, a_shift,
+    /// b_mult, b_shift)` of the input and the prediction (see
+    /// [`crate::detect`]).
+    DetectorScales = 49,
 }
 
 /// Sections every layer has, in the order the host tool writes them.
@@ -152,13 +161,17 @@ pub const HEAD_KINDS: [SectionKind; 4] =
     [SectionKind::HeadW, SectionKind::HeadBias, SectionKind::HeadRqMult, SectionKind::HeadRqShift];
 /// Model-wide sections, in write order.
 pub const MODEL_KINDS: [SectionKind; 2] = [SectionKind::InputScale, SectionKind::OutputScale];
+/// Detector sections (present exactly when the header's detector flag is
+/// set), in write order.
+pub const DETECTOR_KINDS: [SectionKind; 2] = [SectionKind::DetectorInfo, SectionKind::DetectorScales];
 /// Most sections a valid blob can have.
-pub const MAX_SECTIONS: usize = MAX_LAYERS * LAYER_KINDS.len() + HEAD_KINDS.len() + MODEL_KINDS.len();
+pub const MAX_SECTIONS: usize =
+    MAX_LAYERS * LAYER_KINDS.len() + HEAD_KINDS.len() + MODEL_KINDS.len() + DETECTOR_KINDS.len();
 
 impl SectionKind {
     /// From the table byte.
     pub fn from_u8(v: u8) -> Option<SectionKind> {
-        [LAYER_KINDS.as_slice(), HEAD_KINDS.as_slice(), MODEL_KINDS.as_slice()]
+        [LAYER_KINDS.as_slice(), HEAD_KINDS.as_slice(), MODEL_KINDS.as_slice(), DETECTOR_KINDS.as_slice()]
             .into_iter()
             .flatten()
             .copied()
@@ -171,7 +184,8 @@ impl SectionKind {
         match self {
             LayerWx | LayerWh | HeadW if scheme == Scheme::W16A16 => ElemType::I16,
             LayerWx | LayerWh | LayerRqXShift | LayerRqHShift | HeadW | HeadRqShift => ElemType::I8,
-            LayerInfo | LayerBias | LayerRqXMult | LayerRqHMult | HeadBias | HeadRqMult => ElemType::I32,
+            LayerInfo | LayerBias | LayerRqXMult | LayerRqHMult | HeadBias | HeadRqMult | DetectorInfo
+            | DetectorScales => ElemType::I32,
             InputScale | OutputScale => ElemType::F32,
         }
     }
@@ -199,6 +213,8 @@ impl SectionKind {
             HeadRqShift => "head.rq.shift",
             InputScale => "input_scale",
             OutputScale => "output_scale",
+            DetectorInfo => "detector.info",
+            DetectorScales => "detector.scales",
         }
     }
 }
@@ -359,6 +375,8 @@ pub struct Header {
     pub output: u16,
     /// Whether a dense head follows the last layer.
     pub has_head: bool,
+    /// Whether anomaly-detector parameters are present.
+    pub has_detector: bool,
     /// Sections in the table.
     pub sections: u16,
     /// Total bytes, CRC included.
@@ -375,6 +393,7 @@ pub struct Blob<'a> {
     model: QModel<'a>,
     input_scale: &'a [f32],
     output_scale: &'a [f32],
+    detector: Option<Detector<'a>>,
 }
 
 fn rd_u16(b: &[u8], at: usize) -> Option<u16> {
@@ -445,7 +464,7 @@ pub fn parse_header(bytes: &[u8]) -> Result<Header, BlobError> {
     if output == 0 {
         return bad("output values", output);
     }
-    if flags & !1 != 0 {
+    if flags & !3 != 0 {
         return bad("flags", flags);
     }
     if res8 != 0 {
@@ -462,6 +481,7 @@ pub fn parse_header(bytes: &[u8]) -> Result<Header, BlobError> {
         input: input as u16,
         output: output as u16,
         has_head: flags & 1 == 1,
+        has_detector: flags & 2 == 2,
         sections: sections as u16,
         total_len: total,
         state_words: state,
@@ -511,7 +531,11 @@ fn slot(kind: SectionKind, layer: u8) -> usize {
     } else if let Some(i) = HEAD_KINDS.iter().position(|k| *k == kind) {
         MAX_LAYERS * layer_kinds + i
     } else {
-        MAX_LAYERS * layer_kinds + HEAD_KINDS.len() + MODEL_KINDS.iter().position(|k| *k == kind).unwrap_or(0)
+        let base = MAX_LAYERS * layer_kinds + HEAD_KINDS.len();
+        match MODEL_KINDS.iter().position(|k| *k == kind) {
+            Some(i) => base + i,
+            None => base + MODEL_KINDS.len() + DETECTOR_KINDS.iter().position(|k| *k == kind).unwrap_or(0),
+        }
     }
 }
 
@@ -682,6 +706,9 @@ impl<'a> Blob<'a> {
             if HEAD_KINDS.contains(&info.kind) && !header.has_head {
                 return Err(problem("head section in a blob without a head").into());
             }
+            if DETECTOR_KINDS.contains(&info.kind) && !header.has_detector {
+                return Err(problem("detector section in a blob without the detector flag").into());
+            }
             let s = found.entries.get_mut(slot(info.kind, info.layer)).ok_or(problem("bad slot"))?;
             if s.is_some() {
                 return Err(BlobError::Duplicate { kind: info.kind, layer: info.layer }.into());
@@ -757,7 +784,44 @@ impl<'a> Blob<'a> {
         if words != header.state_words as usize {
             return Err(BlobError::Dims { what: "state words", expected: words as u32, got: header.state_words }.into());
         }
-        Ok(Blob { header, bytes, model, input_scale, output_scale })
+        let detector = if header.has_detector {
+            if !header.has_head || out != header.input as u32 {
+                return Err(BlobError::Dims {
+                    what: "detector: head outputs (must predict every input)",
+                    expected: header.input as u32,
+                    got: if header.has_head { out } else { 0 },
+                }
+                .into());
+            }
+            let info = found.i32s(SectionKind::DetectorInfo, 0, 1, 8)?;
+            let scales = found.i32s(SectionKind::DetectorScales, 0, header.input as u32, 4)?;
+            let v = |i: usize| info.get(i).copied().unwrap_or(-1);
+            if v(6) != 0 || v(7) != 0 {
+                return Err(BlobError::Section { index: 0, problem: "detector info reserved words are not 0" }.into());
+            }
+            let small = |i: usize, what: &'static str| -> Result<u8, Error> {
+                u8::try_from(v(i)).map_err(|_| Error::Format { what, value: v(i) })
+            };
+            let warmup = u32::try_from(v(0)).map_err(|_| Error::Format { what: "detector warm-up", value: v(0) })?;
+            Some(Detector::new(
+                header.input as usize,
+                scales,
+                warmup,
+                small(1, "detector EWMA shift")?,
+                small(2, "detector k of n")?,
+                small(3, "detector window")?,
+                v(4) as u32,
+                v(5) as u32,
+            )?)
+        } else {
+            None
+        };
+        Ok(Blob { header, bytes, model, input_scale, output_scale, detector })
+    }
+
+    /// The anomaly detector's parameters, when the blob carries them.
+    pub fn detector(&self) -> Option<&Detector<'a>> {
+        self.detector.as_ref()
     }
 
     /// The validated model, borrowing the blob's bytes.
@@ -840,7 +904,7 @@ mod tests {
             (8, 7, BlobError::Header { field: "scheme", value: 7 }),
             (9, 2, BlobError::Header { field: "cell width", value: 2 }),
             (11, 5, BlobError::Header { field: "layer count", value: 5 }),
-            (16, 2, BlobError::Header { field: "flags", value: 2 }),
+            (16, 4, BlobError::Header { field: "flags", value: 4 }),
         ];
         for (at, v, want) in cases {
             let mut h = header();
@@ -874,7 +938,7 @@ mod tests {
 
     #[test]
     fn every_section_kind_round_trips_its_code() {
-        for k in LAYER_KINDS.iter().chain(&HEAD_KINDS).chain(&MODEL_KINDS) {
+        for k in LAYER_KINDS.iter().chain(&HEAD_KINDS).chain(&MODEL_KINDS).chain(&DETECTOR_KINDS) {
             assert_eq!(SectionKind::from_u8(*k as u8), Some(*k));
         }
         assert_eq!(SectionKind::from_u8(0), None);

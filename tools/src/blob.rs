@@ -86,6 +86,17 @@ fn payloads(q: &QuantModelData) -> Result<Vec<Payload>> {
         let v = if kind == SectionKind::InputScale { &q.input_scale } else { &q.output_scale };
         out.push(Payload { kind, layer: 0, rows: dim(v.len(), kind.name())?, cols: 1, bytes: f32_bytes(v) });
     }
+    if let Some(d) = &q.detector {
+        out.push(Payload { kind: SectionKind::DetectorInfo, layer: 0, rows: 1, cols: 8, bytes: i32_bytes(&d.info) });
+        let x = dim(d.scales.len() / 4, "detector features")?;
+        out.push(Payload {
+            kind: SectionKind::DetectorScales,
+            layer: 0,
+            rows: x,
+            cols: 4,
+            bytes: i32_bytes(&d.scales),
+        });
+    }
     Ok(out)
 }
 
@@ -127,7 +138,7 @@ pub fn encode(q: &QuantModelData) -> Result<Vec<u8>> {
     b.push(u8::try_from(q.layers.len()).context("too many layers")?);
     b.extend_from_slice(&u16::try_from(q.input_scale.len()).context("too many inputs")?.to_le_bytes());
     b.extend_from_slice(&u16::try_from(output).context("too many outputs")?.to_le_bytes());
-    b.push(u8::from(q.head.is_some()));
+    b.push(u8::from(q.head.is_some()) | (u8::from(q.detector.is_some()) << 1));
     b.push(0);
     b.extend_from_slice(&u16::try_from(sections.len()).context("too many sections")?.to_le_bytes());
     b.extend_from_slice(&u32::try_from(total).context("blob larger than 4 GiB")?.to_le_bytes());

@@ -29,6 +29,7 @@ pub mod budget;
 pub mod calibrate;
 pub mod codegen;
 pub mod data;
+pub mod detector;
 pub mod example;
 pub mod export;
 pub mod fit;

@@ -9,6 +9,7 @@ use lapwing::quant::{CellWidth, Scheme};
 use lapwing_tools::blob::{encode, LoadedBlob};
 use lapwing_tools::budget::Budget;
 use lapwing_tools::calibrate::RangeMethod;
+use lapwing_tools::detector::{self, DetectOptions, DetectorOptions};
 use lapwing_tools::import::{ImportOptions, Layout};
 use lapwing_tools::pipeline::{self, NormSource, RunValues, Runnable};
 use lapwing_tools::quantize::{quantize, QuantOptions};
@@ -40,8 +41,8 @@ enum Command {
     Sweep(SweepArgs),
     /// Show what is in a blob: scheme, shapes, sections, flash, RAM, work per step.
     Inspect(InspectArgs),
-    /// Run the fixed-point anomaly detector and print alarms (not implemented yet).
-    Detect(Planned),
+    /// Run the blob's fixed-point anomaly detector over data; print alarms and, with labels, the confusion.
+    Detect(DetectArgs),
     /// Generate a Rust module embedding a blob in an aligned static, with its sizes as constants.
     Codegen(CodegenArgs),
     /// Generate the demo scenario's data sets (not implemented yet).
@@ -190,6 +191,71 @@ struct QuantizeArgs {
     /// Headroom factor above the calibrated range (>= 1).
     #[arg(long, default_value_t = 1.25, help_heading = "Calibration")]
     headroom: f32,
+    #[command(flatten)]
+    detector: DetectorArgs,
+}
+
+/// Anomaly-detector calibration options of `quantize`.
+#[derive(clap::Args, Debug)]
+struct DetectorArgs {
+    /// Calibrate an anomaly detector on the calibration data (normal running) and store it in the blob;
+    /// the model must be a next-step predictor (one head output per input).
+    #[arg(long, help_heading = "Detector")]
+    detector: bool,
+    /// Quantile of normal smoothed scores the alarm level starts from.
+    #[arg(long, default_value_t = 0.999, help_heading = "Detector")]
+    detect_quantile: f64,
+    /// Factor above that quantile for the alarm level.
+    #[arg(long, default_value_t = 1.5, help_heading = "Detector")]
+    detect_margin: f64,
+    /// Clear level as a fraction of the alarm level (hysteresis).
+    #[arg(long, default_value_t = 0.5, help_heading = "Detector")]
+    detect_hysteresis: f64,
+    /// Samples above the level, out of the last --detect-n, that raise the alarm.
+    #[arg(long, default_value_t = 3, help_heading = "Detector")]
+    detect_k: u8,
+    /// Decision window in samples.
+    #[arg(long, default_value_t = 5, help_heading = "Detector")]
+    detect_n: u8,
+    /// EWMA smoothing shift s: each sample weighs 2^-s.
+    #[arg(long, default_value_t = 3, help_heading = "Detector")]
+    detect_smoothing: u8,
+    /// Samples at the start that never raise an alarm (state settling).
+    #[arg(long, default_value_t = 200, help_heading = "Detector")]
+    detect_warmup: u32,
+}
+
+impl DetectorArgs {
+    fn options(&self) -> DetectorOptions {
+        DetectorOptions {
+            quantile: self.detect_quantile,
+            margin: self.detect_margin,
+            hysteresis: self.detect_hysteresis,
+            k_of: self.detect_k,
+            window: self.detect_n,
+            ewma_shift: self.detect_smoothing,
+            warmup: self.detect_warmup,
+        }
+    }
+}
+
+/// Options of `detect`.
+#[derive(clap::Args, Debug)]
+struct DetectArgs {
+    /// A blob with a detector (`quantize --detector`).
+    blob: PathBuf,
+    /// Data: CSV with a header (an optional `label` column of 0/1 gives the event-level confusion), or .npy.
+    #[arg(long, help_heading = "Input")]
+    data: PathBuf,
+    /// Sample rate of the data in Hz, for false alarms per hour.
+    #[arg(long, default_value_t = 400.0, help_heading = "Input")]
+    sample_rate: f64,
+    /// Seconds after a labelled fault's end during which an alarm still counts as detecting it.
+    #[arg(long, default_value_t = 1.0, help_heading = "Input")]
+    grace: f64,
+    /// Write the result as JSON to this file (`-` for standard output).
+    #[arg(long, help_heading = "Output")]
+    json: Option<PathBuf>,
 }
 
 /// Options of `run`.
@@ -361,7 +427,7 @@ fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Report(args) => report_cmd(&args),
         Command::Sweep(args) => sweep_cmd(&args),
         Command::Inspect(args) => inspect_cmd(&args),
-        Command::Detect(_) => planned("detect", "arrives with the anomaly-detection work"),
+        Command::Detect(args) => detect_cmd(&args),
         Command::Codegen(args) => codegen_cmd(&args),
         Command::Simulate(_) => planned("simulate", "arrives with the anomaly-detection work"),
         Command::Demo(args) => demo(&args),
@@ -389,6 +455,10 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
     if a.range == RangeArg::Percentile && !(a.percentile > 0.0 && a.percentile <= 100.0) {
         anyhow::bail!("--percentile {} must be in (0, 100]", a.percentile);
     }
+    let det_opts = a.detector.options();
+    if a.detector.detector {
+        det_opts.validate().map_err(|e| anyhow::anyhow!("--detect-*: {e}"))?;
+    }
     let method = match a.range {
         RangeArg::Minmax => RangeMethod::MinMax,
         RangeArg::Percentile => RangeMethod::Percentile(a.percentile),
@@ -406,7 +476,21 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
     }
     let ranges = pipeline::calibrate_file(&prep.model, &a.calib, method, true)?;
     outln!("calibrated on {} rows of {} ({})", ranges.steps, a.calib.display(), range_name(method));
-    let q = quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?;
+    let mut q =
+        quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?;
+    if a.detector.detector {
+        let rows = data::read(&a.calib, false)?.rows;
+        let p = detector::calibrate(&prep.model, &rows, &det_opts)
+            .with_context(|| format!("{}: detector calibration", a.calib.display()))?;
+        q.detector = Some(detector::to_fixed(&p, &q.input_scale, &q.output_scale)?);
+        outln!(
+            "detector: alarm above {:.2} (clear below {:.2}) smoothed squared standard units, {} of {} samples",
+            p.raise,
+            p.clear,
+            p.k_of,
+            p.window
+        );
+    }
     let bytes = encode(&q)?;
     output::write_atomic(&a.output, &bytes)?;
     let blob = LoadedBlob::read(&a.output)?;
@@ -536,6 +620,28 @@ fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
     let to_stdout = a.json.as_deref().is_some_and(|p| p.as_os_str() == "-");
     if !to_stdout {
         out!("{}", result.to_text());
+    }
+    if let Some(p) = &a.json {
+        write_json(p, &result)?;
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn detect_cmd(a: &DetectArgs) -> anyhow::Result<ExitCode> {
+    if !(a.sample_rate.is_finite() && a.sample_rate > 0.0) {
+        anyhow::bail!("--sample-rate {} must be a positive number of Hz", a.sample_rate);
+    }
+    if !(a.grace.is_finite() && a.grace >= 0.0) {
+        anyhow::bail!("--grace {} must be a non-negative number of seconds", a.grace);
+    }
+    let blob = LoadedBlob::read(&a.blob)?;
+    let parsed = blob.parse()?;
+    let opts = DetectOptions { sample_rate_hz: a.sample_rate, grace_s: a.grace };
+    let result = detector::detect_file(&parsed, &a.data, &opts, true)
+        .map_err(|e| anyhow::anyhow!("{}: {e:#}", a.blob.display()))?;
+    let to_stdout = a.json.as_deref().is_some_and(|p| p.as_os_str() == "-");
+    if !to_stdout {
+        out!("{}", result.to_text(&opts));
     }
     if let Some(p) = &a.json {
         write_json(p, &result)?;

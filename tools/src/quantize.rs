@@ -178,6 +178,9 @@ pub struct QuantModelData {
     pub input_scale: Vec<f32>,
     /// Real value of one output LSB, per output.
     pub output_scale: Vec<f32>,
+    /// Anomaly-detector parameters, when calibrated
+    /// ([`crate::detector::to_fixed`]).
+    pub detector: Option<crate::detector::QuantDetectorData>,
 }
 
 impl QuantModelData {
@@ -387,6 +390,7 @@ pub fn quantize(model: &FloatModelData, ranges: &Ranges, opts: &QuantOptions) ->
         head,
         input_scale: input_scale.iter().map(|s| *s as f32).collect(),
         output_scale,
+        detector: None,
     };
     q.view().context("the quantized model failed the core's validation")?;
     Ok(q)

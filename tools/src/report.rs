@@ -164,8 +164,11 @@ pub struct Report {
     /// Footprint on the device.
     pub footprint: ReportFootprint,
     /// Fraction of samples where the float and quantized detectors agree
-    /// (`None` until the model carries a detector).
+    /// (`None` when the blob carries no detector).
     pub alarm_agreement: Option<f64>,
+    /// Float twin vs device detector, when the blob carries one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub alarms: Option<crate::detector::AlarmAgreement>,
     /// Budget check.
     pub budget: BudgetResult,
     /// Data for the plots.
@@ -332,6 +335,16 @@ pub struct Reporter<'a> {
     trace_float: Vec<f32>,
     trace_quant: Vec<f32>,
     steps: usize,
+    detect: Option<DetectPair<'a>>,
+}
+
+/// The device detector and its float twin, run side by side.
+struct DetectPair<'a> {
+    device: &'a lapwing::detect::Detector<'a>,
+    state: lapwing::detect::DetectorState,
+    twin: crate::detector::FloatDetector,
+    alarms_quant: Vec<bool>,
+    alarms_float: Vec<bool>,
 }
 
 impl<'a> Reporter<'a> {
@@ -384,6 +397,16 @@ impl<'a> Reporter<'a> {
             trace_float: Vec::new(),
             trace_quant: Vec::new(),
             steps: 0,
+            detect: blob.detector().map(|d| DetectPair {
+                device: d,
+                state: lapwing::detect::DetectorState::new(),
+                twin: crate::detector::FloatDetector::new(crate::detector::FloatDetector::params_of(
+                    d,
+                    blob.input_scale(),
+                )),
+                alarms_quant: Vec::new(),
+                alarms_float: Vec::new(),
+            }),
             hidden,
             float: fm,
             blob,
@@ -402,6 +425,12 @@ impl<'a> Reporter<'a> {
         }
         self.float.step_probed(&mut self.fs, x, &mut self.fo, &mut self.fc).map_err(|e| anyhow!("row {t}: {e}"))?;
         let xq = input_to_int(x, self.blob.input_scale());
+        if let Some(dp) = &mut self.detect {
+            // Outputs still hold the previous step's predictions of x[t].
+            let dec = dp.device.update(&mut dp.state, &xq, &self.qo).map_err(|e| anyhow!("row {t}: detector: {e}"))?;
+            dp.alarms_quant.push(dec.alarm);
+            dp.alarms_float.push(dp.twin.update(x, &self.fo).alarm);
+        }
         self.model.step_probed(&mut self.qs, &xq, &mut self.qo, &mut self.qc).map_err(|e| anyhow!("row {t}: {e}"))?;
         let edge = |v: i16| v == i16::MAX || v == i16::MIN;
         for ((f, q), s) in x.iter().zip(&xq).zip(self.blob.input_scale()) {
@@ -495,6 +524,7 @@ impl<'a> Reporter<'a> {
             gate_hist: coarse_histograms(&self.hist),
         };
         drift.insert("output".to_string(), out_drift);
+        let alarms = self.detect.as_ref().map(|d| crate::detector::agreement(&d.alarms_float, &d.alarms_quant));
         let info = inspect::inspect(self.blob);
         let f = &info.footprint;
         let last_cell = (0..self.hidden.len())
@@ -516,7 +546,8 @@ impl<'a> Reporter<'a> {
                 ram_bytes: f.ram_bytes,
                 macs_per_step: f.macs_per_step,
             },
-            alarm_agreement: None,
+            alarm_agreement: alarms.as_ref().map(|a| a.sample_agreement),
+            alarms,
             budget: BudgetResult { passed: true, checked: false, violations: Vec::new() },
             plot,
             last_cell,
@@ -675,6 +706,18 @@ impl Report {
                 db(d.worst_window_sqnr_db),
                 d.worst_window_step,
                 d.window_steps
+            );
+        }
+        if let Some(a) = &self.alarms {
+            let _ = writeln!(
+                s,
+                "\nalarms, float twin vs device detector: sample agreement {:.4} %, events {} float / {} device, \
+                 {} matched, largest onset shift {} samples",
+                100.0 * a.sample_agreement,
+                a.events_float,
+                a.events_quant,
+                a.events_matched,
+                a.max_onset_shift
             );
         }
         if self.budget.checked {

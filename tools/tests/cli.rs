@@ -18,7 +18,7 @@ fn help_lists_every_planned_subcommand() {
 
 #[test]
 fn unimplemented_subcommands_say_so_and_exit_2() {
-    for cmd in ["fit", "detect", "simulate"] {
+    for cmd in ["fit", "simulate"] {
         let out = lapwing(&[cmd, "model.safetensors"]);
         assert_eq!(out.status.code(), Some(2), "`lapwing {cmd}` exit status");
         let err = String::from_utf8_lossy(&out.stderr);
