@@ -241,16 +241,20 @@ const fn build_mantissas<const N: usize>(log2_knots: u32) -> [u16; N] {
 
 const STANDARD_LOG2: u32 = 5;
 const STANDARD_LEN: usize = SEGMENTS * ((1 << STANDARD_LOG2) + 1);
+#[cfg(feature = "standard-table")]
 static STANDARD_MANT: [u16; STANDARD_LEN] = build_mantissas::<STANDARD_LEN>(STANDARD_LOG2);
 
 const COMPACT_LOG2: u32 = 3;
 const COMPACT_LEN: usize = SEGMENTS * ((1 << COMPACT_LOG2) + 1);
+#[cfg(feature = "compact-table")]
 static COMPACT_MANT: [u16; COMPACT_LEN] = build_mantissas::<COMPACT_LEN>(COMPACT_LOG2);
 
 /// The default table: 32 knot intervals per unit, 1,072 bytes of flash.
 ///
 /// Measured bound: sigmoid within 1.12 LSB of Q0.16, tanh within 1.11 LSB
 /// of Q0.15 (asserted <= 1.5, DESIGN.md section 9; exhaustive test `standard_table_error_bound`).
+#[cfg(feature = "standard-table")]
+#[cfg(feature = "standard-table")]
 pub static STANDARD: ActTable = ActTable { log2_knots: STANDARD_LOG2, shifts: SHIFTS, mant: &STANDARD_MANT };
 
 /// The small table for tight flash: 8 knot intervals per unit, 304 bytes.
@@ -258,6 +262,7 @@ pub static STANDARD: ActTable = ActTable { log2_knots: STANDARD_LOG2, shifts: SH
 /// Measured bound: sigmoid within 6.5 LSB of Q0.16, tanh within 6.5 LSB of
 /// Q0.15 on the Q4.11 grid (exhaustive test `compact_table_error_bound`),
 /// 6.7 LSB at full input resolution (asserted <= 7 by a proptest).
+#[cfg(feature = "compact-table")]
 pub static COMPACT: ActTable = ActTable { log2_knots: COMPACT_LOG2, shifts: SHIFTS, mant: &COMPACT_MANT };
 
 /// Which built-in table a model uses (stored in the model as a byte).
@@ -271,12 +276,28 @@ pub enum TableKind {
 }
 
 impl TableKind {
-    /// The table this kind names.
-    pub fn table(self) -> &'static ActTable {
+    /// The table this kind names, when this build links it. Both are linked
+    /// by default (cargo features `standard-table` and `compact-table`); a
+    /// firmware that knows its model's table can turn the other off and save
+    /// its flash.
+    pub fn table(self) -> Option<&'static ActTable> {
         match self {
-            TableKind::Standard => &STANDARD,
-            TableKind::Compact => &COMPACT,
+            #[cfg(feature = "standard-table")]
+            TableKind::Standard => Some(&STANDARD),
+            #[cfg(feature = "compact-table")]
+            TableKind::Compact => Some(&COMPACT),
+            #[allow(unreachable_patterns)]
+            _ => None,
         }
+    }
+
+    /// Flash bytes of this table (whether or not this build links it).
+    pub const fn flash_bytes(self) -> usize {
+        let mant = match self {
+            TableKind::Standard => STANDARD_LEN,
+            TableKind::Compact => COMPACT_LEN,
+        };
+        2 * mant + SEGMENTS
     }
 
     /// The kind for a stored byte, if it names one.

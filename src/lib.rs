@@ -11,7 +11,8 @@
 //!   requantization (Jacob et al. 2018).
 //! - [`activation`]: lookup-table sigmoid and tanh.
 //! - [`float`]: the `f32` reference LSTM (matches PyTorch `nn.LSTM`).
-//! - [`quant`]: the integer-only LSTM step (scheme `w8a16`, cell `c16`/`c32`).
+//! - [`quant`]: the integer-only LSTM step (schemes `w8a16`, `w8a8`,
+//!   `w16a16`; cell `c16`/`c32`).
 //! - [`model`]: the device blob (`.lwq`): zero-copy parse from flash with
 //!   every check done up front.
 //! - [`detect`]: streaming fixed-point anomaly scoring and alarms on the
@@ -121,7 +122,8 @@ impl Gate {
 /// Steps are generic over the probe, so the no-op probe `()` costs nothing.
 /// The host report uses a probe to compare float and integer gate by gate.
 /// For the integer step `T = i32`: pre-activations in Q.19, gate outputs in
-/// Q0.31, the cell in the layer's cell format, the hidden state in Q0.15.
+/// Q0.31, the cell in the layer's cell format, the hidden state in Q0.15
+/// (Q0.7 for `w8a8`).
 pub trait Probe<T> {
     /// Gate pre-activations and outputs of unit `unit` of layer `layer`.
     fn gates(&mut self, layer: usize, unit: usize, pre: &[T; 4], act: &[T; 4]) {

@@ -39,13 +39,16 @@
 //!   `c' = f*c + i*g`, saturating to the cell type.
 //! - **Hidden update**: `h' = o * tanh(c')`, rounded to Q0.15 and clamped to
 //!   `[-32767, 32767]` (symmetric, like the float value's open interval).
-//! - **Head** (optional): `int8` per-row weights; `y = requant(Wy·h) + b`
+//! - **Head** (optional): per-row weights of the scheme's type; `y = requant(Wy·h) + b`
 //!   with the bias in output units (so a large output offset cannot
 //!   overflow the accumulator), saturated to `int16` with a per-output scale.
 //! - **Rounding**: every rounding step is half away from zero
 //!   ([`crate::fixed_point`]); requantization, `i*g` and the hidden update
 //!   round twice (multiply-high, then shift), so they are within 1 LSB of
-//!   the exact value, identically on every target.
+//!   the exact value, identically on every target. With int16 weights and
+//!   a pre-shift `p > 0` there is a third rounding, before the multiply:
+//!   the bound becomes `1 + M * 2^(p-1)` LSB for a real multiplier `M`
+//!   (`M * 2^p` is below `5e-3` on the shipped example).
 //!
 //! # State
 //! Caller-owned `i16` words, [`QModel::state_words`] of them: per layer
@@ -562,7 +565,13 @@ impl<'a> QModel<'a> {
             return Err(Error::Shape { what: "weight element bytes (scheme)", expected: bytes, got: 3 - bytes });
         }
         let v = stack_layers(layers, |l| (l.input, l.hidden), head.as_ref().map(|h| h.input))?;
-        Ok(QModel { layers: v, head, scheme, cell, table: table.table(), table_kind: table })
+        let Some(t) = table.table() else {
+            return Err(Error::Format {
+                what: "activation table not linked in this build (cargo feature)",
+                value: table as i32,
+            });
+        };
+        Ok(QModel { layers: v, head, scheme, cell, table: t, table_kind: table })
     }
 
     /// The layers, first to last.

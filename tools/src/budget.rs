@@ -11,7 +11,7 @@
 //! hidden_sqnr_min_db = 40.0     # every layer's hidden-state SQNR, dB, at least (the worst layer counts)
 //! cell_sqnr_min_db = 30.0       # every layer's cell-state SQNR, at least
 //! drift_max_db = 3.0            # output first-tenth SQNR minus last-tenth SQNR, dB, at most (also applied to each layer<k>.hidden drift)
-//! saturation_rate_max = 0.001   # fraction of saturated values in ANY tensor (output, hidden, cell, gates), at most
+//! saturation_rate_max = 0.001   # fraction of saturated values in ANY tensor (input, output, hidden, cell, gates), at most
 //! flash_max_bytes = 16384       # model data in flash (blob + activation table), at most
 //! ram_max_bytes = 2048          # state RAM, at most
 //! alarm_agreement_min = 0.999   # fraction of samples where float and quantized alarms agree, at least (needs a detector)

@@ -79,7 +79,7 @@ pub struct Inspection {
 pub fn inspect(blob: &Blob<'_>) -> Inspection {
     let m = blob.model();
     let h = blob.header();
-    let table_bytes = m.table_kind().table().flash_bytes();
+    let table_bytes = m.table_kind().flash_bytes();
     Inspection {
         version: lapwing::model::VERSION,
         scheme: h.scheme.name().to_string(),

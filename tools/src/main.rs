@@ -572,6 +572,18 @@ fn report_cmd(a: &ReportArgs) -> anyhow::Result<ExitCode> {
     }
     let blob = LoadedBlob::read(&a.blob)?;
     let parsed = blob.parse()?;
+    if budget.as_ref().is_some_and(|b| b.alarm_agreement_min.is_some()) && parsed.detector().is_none() {
+        anyhow::bail!(
+            "{}: the budget sets alarm_agreement_min but the blob has no detector (quantize with --detector)",
+            a.blob.display()
+        );
+    }
+    if let Some(p) = a.json.as_deref().filter(|p| p.as_os_str() != "-") {
+        let dir = p.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
+        if !dir.is_dir() {
+            anyhow::bail!("--json {}: the directory {} does not exist", p.display(), dir.display());
+        }
+    }
     let prep = float_for(&a.float_model, &a.model_args, a.norm_data.as_deref())?;
     let opts = ReportOptions { window: a.window, trace: a.trace };
     let mut report = report::report_file(&prep.model, &parsed, &a.data, &opts, true)?;
@@ -582,9 +594,7 @@ fn report_cmd(a: &ReportArgs) -> anyhow::Result<ExitCode> {
     if !to_stdout {
         out!("{}", report.to_text());
     }
-    if let Some(p) = &a.json {
-        write_json(p, &report)?;
-    }
+    // Plots first: if one cannot be written, no JSON is left behind either.
     if let Some(dir) = &a.plot {
         let target = budget.as_ref().and_then(|b| b.output_sqnr_min_db);
         let written = plot::write_plots(&report, dir, target)?;
@@ -593,6 +603,9 @@ fn report_cmd(a: &ReportArgs) -> anyhow::Result<ExitCode> {
                 outln!("plot: {}", p.display());
             }
         }
+    }
+    if let Some(p) = &a.json {
+        write_json(p, &report)?;
     }
     Ok(if report.budget.passed { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
@@ -624,7 +637,8 @@ fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
     if let Some(p) = &a.json {
         write_json(p, &result)?;
     }
-    Ok(ExitCode::SUCCESS)
+    // Exit 1 when a budget was given and no configuration meets it.
+    Ok(if result.budget_checked && result.recommended.is_none() { ExitCode::from(1) } else { ExitCode::SUCCESS })
 }
 
 fn detect_cmd(a: &DetectArgs) -> anyhow::Result<ExitCode> {

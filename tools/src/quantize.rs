@@ -17,9 +17,10 @@
 //! - head: int8 per row, output scale `absmax_y * headroom / 32767`, bias in
 //!   output units.
 //!
-//! Every row's worst-case accumulator `sum |q| * 32768` is checked against
-//! `i32::MAX` before anything is built; a row that could overflow is refused
-//! with its layer and row named.
+//! For int8 weights, every row's worst-case accumulator `sum |q| * 32768` is
+//! checked against `i32::MAX` before anything is built; a row that could
+//! overflow is refused with its layer and row named. int16 weights
+//! accumulate in `i64` and need no such limit.
 
 use crate::calibrate::Ranges;
 use crate::float_model::FloatModelData;
@@ -269,7 +270,7 @@ fn check_bound(q: &[i32], cols: usize, scheme: Scheme, what: &str) -> Result<()>
         if worst > i32::MAX as i64 {
             bail!(
                 "{what}, row {r}: worst-case accumulator {worst} exceeds 2^31 - 1 ({cols} columns); \
-                 the w8a16 scheme supports rows up to 516 columns at full scale"
+                 int8-weight schemes support rows up to 516 columns at full scale (w16a16 has no such limit)"
             );
         }
     }

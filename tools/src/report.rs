@@ -42,13 +42,15 @@ pub struct TensorReport {
     pub max_abs: f64,
     /// Root mean square error in real units.
     pub rmse: f64,
-    /// Signal-to-quantization-noise ratio, dB (`+inf` serialized as `null`
-    /// when the two agree exactly).
+    /// Signal-to-quantization-noise ratio, dB. In JSON, a value that is not
+    /// finite is `null`: `+inf` when the two agree exactly (the usual
+    /// case), `-inf` or undefined when the float signal is zero.
     pub sqnr_db: f64,
     /// Cosine similarity of the float and quantized value sequences.
     pub cosine: f64,
     /// How many quantized values sat at a saturation limit of their format
-    /// (for gates: a pre-activation at or beyond the table's input domain).
+    /// (for gates: a pre-activation at or beyond the table's clamp point,
+    /// `|x| >= 16`, or `>= 8` for the tanh gate g).
     pub saturated: u64,
     /// `saturated` divided by the values compared.
     pub saturation_rate: f64,
@@ -288,8 +290,18 @@ impl Energy {
         let tenth = (t / 10).max(1).min(t);
         let first = Self::sqnr(self.steps.get(..tenth).unwrap_or(&[]));
         let last = Self::sqnr(self.steps.get(t - tenth..).unwrap_or(&[]));
-        let window = window.max(1);
-        let windows: Vec<f64> = self.steps.chunks(window).map(Self::sqnr).collect();
+        let window = window.clamp(1, t.max(1));
+        // Windows of `window` steps; a last piece shorter than half a window
+        // joins the one before it, so a stub never becomes the worst window.
+        let mut bounds: Vec<(usize, usize)> = (0..t).step_by(window).map(|s| (s, (s + window).min(t))).collect();
+        if bounds.len() > 1 && bounds.last().is_some_and(|(a, b)| 2 * (b - a) < window) {
+            if let Some((_, end)) = bounds.pop() {
+                if let Some(last) = bounds.last_mut() {
+                    last.1 = end;
+                }
+            }
+        }
+        let windows: Vec<f64> = bounds.iter().map(|(a, b)| Self::sqnr(self.steps.get(*a..*b).unwrap_or(&[]))).collect();
         let (worst_i, worst) =
             windows
                 .iter()
@@ -466,7 +478,9 @@ impl<'a> Reporter<'a> {
                 self.layer_cell[k].add(fc.cell[k][j] as f64, qcell as f64 * self.cell_unit[k], cell_sat);
                 for g in 0..4 {
                     let (gf, gq) = (fc.gates[k][j][g] as f64, qc.gates[k][j][g] as f64 / ONE_Q31);
-                    self.layer_gates[k][g].add(gf, gq, qc.pre[k][j][g].abs() >= DOMAIN);
+                    // The tanh gate (g) reads the table at 2x, so it clamps at half the domain.
+                    let edge = if g == 2 { DOMAIN as u32 / 2 } else { DOMAIN as u32 };
+                    self.layer_gates[k][g].add(gf, gq, qc.pre[k][j][g].unsigned_abs() >= edge);
                     let lsb = ((gq - gf) * 32_768.0).round().clamp(-FINE_HALF as f64, FINE_HALF as f64) as i64;
                     if let Some(c) = self.hist[k][g].get_mut((lsb + FINE_HALF) as usize) {
                         *c += 1;
@@ -510,7 +524,7 @@ impl<'a> Reporter<'a> {
             (centre.saturating_sub(len / 2).min(t - len), len)
         });
         let start = start.min(t - 1);
-        let end = (start + len.max(1)).min(t);
+        let end = start.saturating_add(len.max(1)).min(t);
         let rows = |v: &[f32]| -> Vec<Vec<f32>> {
             v.get(start * y..end * y).unwrap_or(&[]).chunks(y.max(1)).map(<[f32]>::to_vec).collect()
         };
@@ -568,7 +582,9 @@ fn coarse_histograms(fine: &[[Vec<u64>; 4]]) -> Vec<[ErrorHistogram; 4]> {
             .sum()
     };
     let mut bin = 1i64;
-    while bin < FINE_HALF / HIST_HALF && (within(bin * HIST_HALF) as f64) < 0.995 * total as f64 {
+    // Inside means inside the inner bins: the outer ones start half a bin
+    // before HIST_HALF * bin and also hold everything beyond.
+    while bin < FINE_HALF / HIST_HALF && (within(bin * HIST_HALF - bin / 2 - 1) as f64) < 0.995 * total as f64 {
         bin *= 2;
     }
     fine.iter()

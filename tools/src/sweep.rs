@@ -58,8 +58,12 @@ pub struct SweepRow {
     pub saturation_rate: f64,
     /// Whether it meets the budget (true when there is no budget).
     pub within_budget: bool,
-    /// Budget violations, one message each.
+    /// Budget violations, one message each; or why the configuration
+    /// could not be built.
     pub violations: Vec<String>,
+    /// False when the configuration cannot be built (e.g. an int8 row that
+    /// could overflow); its figures are then zero.
+    pub feasible: bool,
 }
 
 /// The sweep's result.
@@ -99,6 +103,7 @@ fn row_of(r: &Report, budget: Option<&Budget>) -> Result<SweepRow> {
         saturation_rate: saturation,
         within_budget: within,
         violations,
+        feasible: true,
     })
 }
 
@@ -122,7 +127,28 @@ pub fn sweep(
     let mut out = Vec::with_capacity(configs.len());
     for (i, opts) in configs.iter().enumerate() {
         let name = format!("{}-{}-{}", opts.scheme.name(), opts.cell.name(), opts.table.name());
-        let q = quantize(model, ranges, opts).with_context(|| format!("configuration {name}"))?;
+        let q = match quantize(model, ranges, opts) {
+            Ok(q) => q,
+            Err(e) => {
+                // Not buildable in this scheme: a row saying why, not an abort.
+                out.push(SweepRow {
+                    scheme: name,
+                    flash_bytes: 0,
+                    ram_bytes: 0,
+                    macs_per_step: 0,
+                    instructions_per_step_estimate: 0,
+                    output_sqnr_db: f64::NAN,
+                    hidden_sqnr_db: f64::NAN,
+                    drift_db: f64::NAN,
+                    saturation_rate: f64::NAN,
+                    within_budget: false,
+                    violations: vec![format!("cannot be built: {e:#}")],
+                    feasible: false,
+                });
+                progress(i + 1, configs.len());
+                continue;
+            }
+        };
         let r = report_quantized(model, &q, rows, &ReportOptions::default())
             .with_context(|| format!("configuration {name}"))?;
         let mut row = row_of(&r, budget)?;
@@ -168,6 +194,11 @@ impl Sweep {
                 (true, true) => "pass",
                 (true, false) => "FAIL",
             };
+            if !r.feasible {
+                let why = r.violations.first().map_or("", String::as_str);
+                let _ = writeln!(s, "{:<22} {why}", r.scheme);
+                continue;
+            }
             let _ = writeln!(
                 s,
                 "{:<22} {:>7} {:>6} {:>6} {:>12} {:>8.1} {:>8.1} {:>+7.2} {:>9.4}  {budget}{mark}",

@@ -178,3 +178,38 @@ fn resealed_bad_values_get_their_own_errors() {
     reseal(&mut b);
     assert_eq!(parse(&b), Error::Blob(BlobError::Header { field: "section count", value: 65535 }));
 }
+
+#[test]
+fn detector_parameters_round_trip_and_are_validated() {
+    use lapwing::model::SectionKind;
+    use lapwing_tools::detector::{to_fixed, DetectorParams};
+    // A next-step predictor shape: the head predicts every input.
+    let spec = ModelSpec { input: 3, hidden: 6, layers: 1, output: Some(3), gain: 1.0 };
+    let mut q = quantized(&spec, 21, CellWidth::C16, TableKind::Standard);
+    let p = DetectorParams {
+        spread: vec![0.1, 0.2, 0.3],
+        raise: 9.0,
+        clear: 4.5,
+        warmup: 50,
+        ewma_shift: 3,
+        k_of: 2,
+        window: 4,
+    };
+    q.detector = Some(to_fixed(&p, &q.input_scale, &q.output_scale).unwrap());
+    let bytes = encode(&q).unwrap();
+    let a = AlignedBytes::from_bytes(&bytes);
+    let blob = Blob::parse(a.bytes()).unwrap();
+    let d = blob.detector().expect("detector present");
+    assert_eq!(d.settings(), (50, 3, 2, 4, 9 << 16, (4.5 * 65536.0) as u32));
+    // k greater than n, resealed: refused by the core's detector validation.
+    let mut b = bytes.clone();
+    let at = section_offset(&bytes, SectionKind::DetectorInfo, 0) + 8;
+    b[at..at + 4].copy_from_slice(&9i32.to_le_bytes());
+    reseal(&mut b);
+    assert!(Blob::parse(AlignedBytes::from_bytes(&b).bytes()).is_err());
+    // A detector on a model whose head does not predict every input: refused.
+    let spec = ModelSpec { input: 3, hidden: 6, layers: 1, output: Some(2), gain: 1.0 };
+    let mut q2 = quantized(&spec, 22, CellWidth::C16, TableKind::Standard);
+    q2.detector = q.detector.clone();
+    assert!(encode(&q2).is_err());
+}
