@@ -447,7 +447,7 @@ pub fn worst_case_accumulator(row: &[i8]) -> i64 {
 fn check_bound(what: &'static str, layer: usize, w: Weights<'_>, cols: usize) -> Result<u8, Error> {
     match w {
         Weights::I8(w) => {
-            for (row, r) in w.chunks_exact(cols).enumerate() {
+            for (row, r) in (0..w.len() / cols.max(1)).map(|k| w.get(k * cols..(k + 1) * cols).unwrap_or(&[])).enumerate() {
                 if worst_case_accumulator(r) > i32::MAX as i64 {
                     return Err(Error::AccumulatorBound { what, layer, row });
                 }
@@ -455,8 +455,8 @@ fn check_bound(what: &'static str, layer: usize, w: Weights<'_>, cols: usize) ->
             Ok(0)
         }
         Weights::I16(w) => {
-            let worst = w
-                .chunks_exact(cols)
+            let worst = (0..w.len() / cols.max(1))
+                .map(|k| w.get(k * cols..(k + 1) * cols).unwrap_or(&[]))
                 .map(|r| r.iter().map(|v| (*v as i64).abs()).sum::<i64>() * ACT_MAX)
                 .max()
                 .unwrap_or(0);
@@ -673,14 +673,14 @@ impl<'a> QModel<'a> {
     ) -> Result<(), Error> {
         let cw = self.cell.words();
         let layer_words: usize = self.layers.iter().map(|l| self.scheme.hidden_words(l.hidden) + l.hidden * cw).sum();
-        let (mut rest, scratch) = state.split_at_mut(layer_words);
+        let (mut rest, scratch) = state.split_at_mut_checked(layer_words).ok_or(Error::StateSize { expected: layer_words, got: 0 })?;
         let scratch: &mut [A] = cast_state(scratch)?;
         let mut prev: Option<&[A]> = None;
         for (k, layer) in self.layers.iter().enumerate() {
             let hw = self.scheme.hidden_words(layer.hidden);
-            let (hc, tail) = rest.split_at_mut(hw + layer.hidden * cw);
+            let (hc, tail) = rest.split_at_mut_checked(hw + layer.hidden * cw).ok_or(Error::StateSize { expected: hw, got: 0 })?;
             rest = tail;
-            let (h_words, c) = hc.split_at_mut(hw);
+            let (h_words, c) = hc.split_at_mut_checked(hw).ok_or(Error::StateSize { expected: hw, got: 0 })?;
             let h: &mut [A] = cast_state(h_words)?;
             let got = h.len();
             let h = h.get_mut(..layer.hidden).ok_or(Error::StateSize { expected: layer.hidden, got })?;
@@ -695,7 +695,8 @@ impl<'a> QModel<'a> {
         match &self.head {
             Some(head) => {
                 let w = W::slice(head.w);
-                let rows = w.chunks_exact(head.input).zip(head.bias).enumerate();
+                let n = head.input;
+                let rows = head.bias.iter().enumerate().map(|(r, b)| (r, (w.get(r * n..(r + 1) * n).unwrap_or(&[]), b)));
                 for (o, (r, (row, b))) in out.iter_mut().zip(rows) {
                     *o = sat_i16(head.rq.apply(r, W::dot(row, last), head.pre).saturating_add(*b));
                 }
