@@ -181,6 +181,31 @@ pub struct FitResult {
 }
 
 impl FitResult {
+    /// A short text summary: shape, epochs, losses, throughput.
+    pub fn to_text(&self) -> String {
+        let best = self.val_loss.get(self.best_epoch).copied().unwrap_or(f32::NAN);
+        let mut s = format!(
+            "fitted LSTM X{} H{} x{} layer(s) + head Y{}: {} epoch(s) run, best epoch {}\n",
+            self.norm.mean.len(),
+            self.model.layers.first().map_or(0, |l| l.hidden),
+            self.model.layers.len(),
+            self.model.head.as_ref().map_or(0, |h| h.output),
+            self.val_loss.len(),
+            self.best_epoch + 1,
+        );
+        s += &format!(
+            "  validation loss (standardized MSE): {:.5} untrained -> {best:.5} ({} validation steps)\n",
+            self.initial_val_loss, self.val_steps
+        );
+        s += &format!(
+            "  {} training steps per epoch, {:.1} s, {:.0} steps/s (forward + backward)\n",
+            self.train_steps,
+            self.seconds,
+            self.samples_per_second()
+        );
+        s
+    }
+
     /// Training throughput: training step pairs processed (forward and
     /// backward) per second of wall-clock time, validation included in the
     /// time.

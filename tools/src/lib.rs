@@ -18,6 +18,10 @@
 //!   [`plot`]: its SVG figures; [`budget`]: the error budget a CI checks;
 //! - [`sweep`]: every scheme x cell x table against a budget;
 //! - [`inspect`]: what a blob holds; [`codegen`]: the firmware module;
+//! - [`scenario`]: the invented demo scenario's data sets; [`fit`]: training
+//!   a float predictor; [`export`]: writing it as safetensors;
+//!   [`detector`]: calibration, float twin and evaluation of the anomaly
+//!   detector; [`demo`]: the whole pipeline on the demo scenario;
 //! - [`synth`], [`example`]: seeded models and signals, the built-in example.
 //!
 //! The quantized path always runs the core's device code
@@ -29,6 +33,7 @@ pub mod budget;
 pub mod calibrate;
 pub mod codegen;
 pub mod data;
+pub mod demo;
 pub mod detector;
 pub mod example;
 pub mod export;

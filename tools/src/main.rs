@@ -10,11 +10,13 @@ use lapwing_tools::blob::{encode, LoadedBlob};
 use lapwing_tools::budget::Budget;
 use lapwing_tools::calibrate::RangeMethod;
 use lapwing_tools::detector::{self, DetectOptions, DetectorOptions};
+use lapwing_tools::fit::{self, FitOptions};
 use lapwing_tools::import::{ImportOptions, Layout};
 use lapwing_tools::pipeline::{self, NormSource, RunValues, Runnable};
 use lapwing_tools::quantize::{quantize, QuantOptions};
 use lapwing_tools::report::{self, ReportOptions};
-use lapwing_tools::{codegen, data, example, inspect, output, plot, sweep};
+use lapwing_tools::scenario::{self, DataSet, Scenario};
+use lapwing_tools::{codegen, data, demo, example, export, inspect, output, plot, sweep};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
@@ -29,8 +31,8 @@ struct Cli {
 
 #[derive(Subcommand, Debug)]
 enum Command {
-    /// Train a next-step predictor on normal data (not implemented yet).
-    Fit(Planned),
+    /// Train a float next-step predictor (LSTM + dense head) on normal running data.
+    Fit(FitArgs),
     /// Import a float model, calibrate it on data and write a device blob (.lwq).
     Quantize(QuantizeArgs),
     /// Run a float model or a blob over data step by step and write the outputs as CSV.
@@ -45,18 +47,69 @@ enum Command {
     Detect(DetectArgs),
     /// Generate a Rust module embedding a blob in an aligned static, with its sizes as constants.
     Codegen(CodegenArgs),
-    /// Generate the demo scenario's data sets (not implemented yet).
-    Simulate(Planned),
-    /// Run the quantize-and-compare path on the built-in example.
+    /// Generate a scenario's labelled data sets (the invented ventilation line of demo-data/).
+    Simulate(SimulateArgs),
+    /// The whole pipeline on the shipped demo scenario: data, quantize, report, detect, codegen.
     Demo(DemoArgs),
+    /// Quantize and compare on the built-in random example (no files needed).
+    Example(ExampleArgs),
 }
 
-/// Arguments of a subcommand that is planned but not built yet.
+/// Options of `fit`.
 #[derive(clap::Args, Debug)]
-struct Planned {
-    /// Ignored: this subcommand is not implemented yet.
-    #[arg(trailing_var_arg = true, allow_hyphen_values = true, hide = true)]
-    rest: Vec<String>,
+struct FitArgs {
+    /// Training data of normal running: CSV with a header (a `label` column is ignored), or .npy [T, X].
+    #[arg(long, help_heading = "Input")]
+    train: PathBuf,
+    /// Output float model (.safetensors, Lapwing's layout with the input normalization), written atomically.
+    #[arg(short, long, help_heading = "Output")]
+    output: PathBuf,
+    /// Hidden units per LSTM layer.
+    #[arg(long, default_value_t = 32, help_heading = "Model")]
+    hidden: usize,
+    /// Stacked LSTM layers.
+    #[arg(long, default_value_t = 1, help_heading = "Model")]
+    layers: usize,
+    /// Truncated-BPTT window, in steps.
+    #[arg(long, default_value_t = 64, help_heading = "Training")]
+    window: usize,
+    /// Streams trained in parallel (one optimizer step per window over all of them).
+    #[arg(long, default_value_t = 16, help_heading = "Training")]
+    batch: usize,
+    /// Largest number of epochs.
+    #[arg(long, default_value_t = 30, help_heading = "Training")]
+    epochs: usize,
+    /// Stop after this many epochs in a row without a lower validation loss.
+    #[arg(long, default_value_t = 4, help_heading = "Training")]
+    patience: usize,
+    /// Adam learning rate.
+    #[arg(long, default_value_t = 1e-3, help_heading = "Training")]
+    lr: f32,
+    /// Clip the global gradient norm to this value (0 disables clipping).
+    #[arg(long, default_value_t = 1.0, help_heading = "Training")]
+    clip: f32,
+    /// Fraction of the rows, taken from the end, held out for validation.
+    #[arg(long, default_value_t = 0.1, help_heading = "Training")]
+    val_fraction: f32,
+    /// Seed of the weight initialization (same seed and data, same model).
+    #[arg(long, default_value_t = 0, help_heading = "Training")]
+    seed: u64,
+}
+
+/// Options of `simulate`.
+#[derive(clap::Args, Debug)]
+struct SimulateArgs {
+    /// Scenario file (TOML), e.g. demo-data/scenario.toml.
+    scenario: PathBuf,
+    /// Which data set: train (normal running), calib (normal, another seed), test (faults injected), sample.
+    #[arg(long, default_value = "test", help_heading = "Input")]
+    set: String,
+    /// Output file: .csv (features then a 0/1 `label` column) or .npy (float32 [T, 4], no labels).
+    #[arg(short, long, help_heading = "Output")]
+    output: PathBuf,
+    /// Also write the fault events (kind, start, end rows) as JSON to this file (`-` for standard output).
+    #[arg(long, help_heading = "Output")]
+    events: Option<PathBuf>,
 }
 
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -203,25 +256,25 @@ struct DetectorArgs {
     #[arg(long, help_heading = "Detector")]
     detector: bool,
     /// Quantile of normal smoothed scores the alarm level starts from.
-    #[arg(long, default_value_t = 0.999, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.quantile, help_heading = "Detector")]
     detect_quantile: f64,
     /// Factor above that quantile for the alarm level.
-    #[arg(long, default_value_t = 1.5, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.margin, help_heading = "Detector")]
     detect_margin: f64,
     /// Clear level as a fraction of the alarm level (hysteresis).
-    #[arg(long, default_value_t = 0.5, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.hysteresis, help_heading = "Detector")]
     detect_hysteresis: f64,
     /// Samples above the level, out of the last --detect-n, that raise the alarm.
-    #[arg(long, default_value_t = 3, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.k_of, help_heading = "Detector")]
     detect_k: u8,
     /// Decision window in samples.
-    #[arg(long, default_value_t = 5, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.window, help_heading = "Detector")]
     detect_n: u8,
     /// EWMA smoothing shift s: each sample weighs 2^-s.
-    #[arg(long, default_value_t = 3, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.ewma_shift, help_heading = "Detector")]
     detect_smoothing: u8,
     /// Samples at the start that never raise an alarm (state settling).
-    #[arg(long, default_value_t = 200, help_heading = "Detector")]
+    #[arg(long, default_value_t = DetectorOptions::DEFAULT.warmup, help_heading = "Detector")]
     detect_warmup: u32,
 }
 
@@ -372,6 +425,23 @@ struct CodegenArgs {
 /// Options of `demo`.
 #[derive(clap::Args, Debug)]
 struct DemoArgs {
+    /// Output directory (created if missing; files in it are replaced).
+    #[arg(long, default_value = "demo-out")]
+    out: PathBuf,
+    /// Fit a new float model on the generated training set instead of using the shipped weights.
+    #[arg(long)]
+    refit: bool,
+    /// The demo-data directory (scenario.toml and model.safetensors).
+    #[arg(long, default_value = "demo-data")]
+    demo_data: PathBuf,
+    /// Print the summary as JSON instead of text.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Options of `example`.
+#[derive(clap::Args, Debug)]
+struct ExampleArgs {
     /// Integer scheme.
     #[arg(long, value_enum, default_value = "w8a16", help_heading = "Scheme")]
     scheme: SchemeArg,
@@ -417,11 +487,8 @@ fn main() -> ExitCode {
 }
 
 fn run(cli: Cli) -> anyhow::Result<ExitCode> {
-    let planned = |name: &str, what: &str| -> anyhow::Result<ExitCode> {
-        anyhow::bail!("`lapwing {name}` is not implemented yet ({what}); see DESIGN.md section 6")
-    };
     match cli.command {
-        Command::Fit(_) => planned("fit", "training arrives with the anomaly-detection work"),
+        Command::Fit(args) => fit_cmd(&args),
         Command::Quantize(args) => quantize_cmd(&args),
         Command::Run(args) => run_cmd(&args),
         Command::Report(args) => report_cmd(&args),
@@ -429,8 +496,9 @@ fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Inspect(args) => inspect_cmd(&args),
         Command::Detect(args) => detect_cmd(&args),
         Command::Codegen(args) => codegen_cmd(&args),
-        Command::Simulate(_) => planned("simulate", "arrives with the anomaly-detection work"),
-        Command::Demo(args) => demo(&args),
+        Command::Simulate(args) => simulate_cmd(&args),
+        Command::Demo(args) => demo_cmd(&args),
+        Command::Example(args) => example_cmd(&args),
     }
 }
 
@@ -689,7 +757,73 @@ fn codegen_cmd(a: &CodegenArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
-fn demo(args: &DemoArgs) -> anyhow::Result<ExitCode> {
+fn fit_cmd(a: &FitArgs) -> anyhow::Result<ExitCode> {
+    output::check_destination(&a.output)?;
+    let opts = FitOptions {
+        hidden: a.hidden,
+        layers: a.layers,
+        window: a.window,
+        batch: a.batch,
+        epochs: a.epochs,
+        patience: a.patience,
+        lr: a.lr,
+        clip: a.clip,
+        val_fraction: a.val_fraction,
+        seed: a.seed,
+        progress: true,
+    };
+    let data = data::read(&a.train, true)?;
+    let r = fit::fit(&data.rows, &opts).map_err(|e| anyhow::anyhow!("{}: {e:#}", a.train.display()))?;
+    export::save_safetensors(&r.model, Some(&r.norm), &a.output)?;
+    out!("{}", r.to_text());
+    outln!("wrote {}", a.output.display());
+    Ok(ExitCode::SUCCESS)
+}
+
+fn simulate_cmd(a: &SimulateArgs) -> anyhow::Result<ExitCode> {
+    let Some(set) = DataSet::from_name(&a.set) else {
+        anyhow::bail!("--set {}: unknown data set (accepted: train, calib, test, sample)", a.set);
+    };
+    output::check_destination(&a.output)?;
+    let scen = Scenario::load(&a.scenario)?;
+    let g = scenario::generate(&scen, set).map_err(|e| anyhow::anyhow!("{}: {e:#}", a.scenario.display()))?;
+    scenario::write(&g, &a.output)?;
+    let events: Vec<serde_json::Value> =
+        g.events.iter().map(|e| serde_json::json!({"kind": e.kind.name(), "start": e.start, "end": e.end})).collect();
+    if a.events.as_deref().is_none_or(|p| p.as_os_str() != "-") {
+        outln!(
+            "wrote {}: {} set, {} rows x {} features at {} Hz ({:.1} min), {} fault events, content hash {:#018x}",
+            a.output.display(),
+            set.name(),
+            g.rows.len(),
+            g.columns.len(),
+            g.sample_rate_hz,
+            g.rows.len() as f64 / f64::from(g.sample_rate_hz) / 60.0,
+            g.events.len(),
+            scenario::content_hash(&g)
+        );
+        for e in &g.events {
+            outln!("  {:<14} rows {}..{}", e.kind.name(), e.start, e.end);
+        }
+    }
+    if let Some(p) = &a.events {
+        write_json(p, &events)?;
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn demo_cmd(a: &DemoArgs) -> anyhow::Result<ExitCode> {
+    let opts = demo::DemoOptions { demo_data: a.demo_data.clone(), out: a.out.clone(), refit: a.refit, verbose: true };
+    let summary = demo::run(&opts)?;
+    if a.json {
+        outln!("{}", serde_json::to_string_pretty(&summary)?);
+    } else {
+        out!("{}", summary.to_text(&a.out));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn example_cmd(args: &ExampleArgs) -> anyhow::Result<ExitCode> {
     if args.steps == 0 {
         anyhow::bail!("--steps must be at least 1");
     }

@@ -16,16 +16,7 @@ use std::path::Path;
 /// (named in the message), an error from `fill`, or an I/O error.
 pub fn write_atomic_with(path: &Path, fill: impl FnOnce(&File) -> Result<()>) -> Result<()> {
     let name = path.display();
-    if path.file_name().is_none() {
-        bail!("cannot write {name}: not a file name");
-    }
-    let dir = match path.parent() {
-        Some(d) if !d.as_os_str().is_empty() => d,
-        _ => Path::new("."),
-    };
-    if !dir.is_dir() {
-        bail!("cannot write {name}: directory {} does not exist", dir.display());
-    }
+    let dir = check_destination(path)?;
     let mut builder = tempfile::Builder::new();
     builder.prefix(".lapwing-").suffix(".tmp");
     #[cfg(unix)]
@@ -40,6 +31,27 @@ pub fn write_atomic_with(path: &Path, fill: impl FnOnce(&File) -> Result<()>) ->
     tmp.as_file().sync_all().with_context(|| format!("cannot write {name}"))?;
     tmp.persist(path).map_err(|e| e.error).with_context(|| format!("cannot write {name}: cannot rename into place"))?;
     Ok(())
+}
+
+/// Checks that `path` can be a destination: it names a file and its
+/// directory exists. Commands call it before long work so a typo in the
+/// output path fails at once; returns the directory.
+///
+/// # Errors
+/// A path without a file name, or a directory that does not exist (named).
+pub fn check_destination(path: &Path) -> Result<&Path> {
+    let name = path.display();
+    if path.file_name().is_none() {
+        bail!("cannot write {name}: not a file name");
+    }
+    let dir = match path.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d,
+        _ => Path::new("."),
+    };
+    if !dir.is_dir() {
+        bail!("cannot write {name}: directory {} does not exist", dir.display());
+    }
+    Ok(dir)
 }
 
 /// Writes `bytes` to `path` atomically (see [`write_atomic_with`]).

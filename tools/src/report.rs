@@ -435,14 +435,15 @@ impl<'a> Reporter<'a> {
         if let Some(i) = x.iter().position(|v| !v.is_finite()) {
             bail!("row {t}, feature {i} is {} (data must be finite)", x[i]);
         }
-        self.float.step_probed(&mut self.fs, x, &mut self.fo, &mut self.fc).map_err(|e| anyhow!("row {t}: {e}"))?;
         let xq = input_to_int(x, self.blob.input_scale());
         if let Some(dp) = &mut self.detect {
-            // Outputs still hold the previous step's predictions of x[t].
+            // Before either model steps, the outputs still hold the previous
+            // step's predictions of x[t].
             let dec = dp.device.update(&mut dp.state, &xq, &self.qo).map_err(|e| anyhow!("row {t}: detector: {e}"))?;
             dp.alarms_quant.push(dec.alarm);
             dp.alarms_float.push(dp.twin.update(x, &self.fo).alarm);
         }
+        self.float.step_probed(&mut self.fs, x, &mut self.fo, &mut self.fc).map_err(|e| anyhow!("row {t}: {e}"))?;
         self.model.step_probed(&mut self.qs, &xq, &mut self.qo, &mut self.qc).map_err(|e| anyhow!("row {t}: {e}"))?;
         let edge = |v: i16| v == i16::MAX || v == i16::MIN;
         for ((f, q), s) in x.iter().zip(&xq).zip(self.blob.input_scale()) {
