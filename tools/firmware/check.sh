@@ -16,7 +16,18 @@
 # Needs qemu-system-arm, binutils-arm-none-eabi and, for every target that
 # `rustup target list --installed` lacks, Debian's rustc-web, cargo-web and
 # rust-web-src (core is then built from source with -Zbuild-std=core).
-# Missing packages are installed with apt-get when run as root.
+# Run as root (CI), it first tries `rustup target add` for the missing
+# targets (when rustup is there and can reach its server), then installs
+# the missing packages with apt-get.
+#
+# The `demo` model is demo-data/model.safetensors, calibrated on and fed
+# with demo-data/sample.csv; while that file does not exist, a synthetic
+# model of the same shape (X=4, H=32, head Y=4) stands in.
+#
+# Environment: LAPWING_FW_STEPS (steps per run, default 2000, at least
+# 1000), LAPWING_FW_TOOLCHAIN (auto: a rustup target where installed, else
+# Debian's Rust; rustup or debian: that one for every target),
+# LAPWING_FW_QEMU_TIMEOUT (seconds per QEMU run, default 600).
 #
 # Usage: bash tools/firmware/check.sh [--target T]... [--config C]...
 #        [--no-proof] [--gen-only] [--list]
@@ -29,9 +40,12 @@ OUT="$ROOT/target/firmware"
 FW_TARGET="$OUT/cargo"          # the firmware's own cargo target directory
 STEPS=${LAPWING_FW_STEPS:-2000} # >= 1,000 steps per run
 QEMU_TIMEOUT=${LAPWING_FW_QEMU_TIMEOUT:-600}
+TOOLCHAIN=${LAPWING_FW_TOOLCHAIN:-auto}
+DEMO_MODEL="$ROOT/demo-data/model.safetensors"
+DEMO_DATA="$ROOT/demo-data/sample.csv"
 
 ALL_TARGETS=(thumbv6m-none-eabi thumbv7m-none-eabi thumbv7em-none-eabihf thumbv8m.main-none-eabihf)
-# name | model | scheme | cell
+# name | model | scheme | cell | activation table (standard when empty)
 ALL_CONFIGS=(
     "example-w8a16-c16|example|w8a16|c16"
     "example-w8a8-c16|example|w8a8|c16"
@@ -40,6 +54,7 @@ ALL_CONFIGS=(
     "demo-w8a16-c16|demo|w8a16|c16"
     "demo-w8a8-c16|demo|w8a8|c16"
     "demo-w16a16-c16|demo|w16a16|c16"
+    "demo-w8a16-c16-compact|demo|w8a16|c16|compact"
     "deep-w8a8-c32|deep|w8a8|c32"
 )
 
@@ -56,7 +71,13 @@ board() { # target -> "board cpu"
 model_files() { # model -> "safetensors calib data label"
     case "$1" in
         example) echo "$ROOT/examples/pipeline/lstm_x4_h16.safetensors $ROOT/examples/pipeline/signal.csv $ROOT/examples/pipeline/signal.csv example_X4_H16x2_Y2" ;;
-        demo) echo "$GEN/shapes/demo/model.safetensors $GEN/shapes/demo/calib.csv $GEN/shapes/demo/signal.csv demo_X4_H32_Y4" ;;
+        demo)
+            if [ -f "$DEMO_MODEL" ]; then
+                echo "$DEMO_MODEL $DEMO_DATA $DEMO_DATA demo_X4_H32_Y4"
+            else
+                echo "$GEN/shapes/demo/model.safetensors $GEN/shapes/demo/calib.csv $GEN/shapes/demo/signal.csv demo-shape_X4_H32_Y4_(synthetic)"
+            fi
+            ;;
         deep) echo "$GEN/shapes/deep/model.safetensors $GEN/shapes/deep/calib.csv $GEN/shapes/deep/signal.csv deep_X3_H5x3_no_head" ;;
         *) return 1 ;;
     esac
@@ -88,6 +109,14 @@ done
 for t in "${TARGETS[@]}"; do
     board "$t" >/dev/null || { echo "check.sh: unknown target \`$t\` (one of: ${ALL_TARGETS[*]})" >&2; exit 2; }
 done
+case "$STEPS" in
+    '' | *[!0-9]*) echo "check.sh: LAPWING_FW_STEPS=\`$STEPS\` is not a number" >&2; exit 2 ;;
+esac
+[ "$STEPS" -ge 1000 ] || { echo "check.sh: LAPWING_FW_STEPS must be at least 1000 (is $STEPS)" >&2; exit 2; }
+case "$TOOLCHAIN" in
+    auto | rustup | debian) ;;
+    *) echo "check.sh: LAPWING_FW_TOOLCHAIN must be auto, rustup or debian (is \`$TOOLCHAIN\`)" >&2; exit 2 ;;
+esac
 SELECTED=()
 if [ ${#CONFIGS[@]} -eq 0 ]; then
     SELECTED=("${ALL_CONFIGS[@]}")
@@ -108,14 +137,43 @@ phase "setup: emulator, binutils, cross toolchain"
 HOST_CARGO=$(command -v cargo || true)
 [ -n "$HOST_CARGO" ] || { echo "check.sh: cargo not found (the host tool builds with the machine's Rust)" >&2; exit 2; }
 
-declare -A MODE
+IS_ROOT=0
+[ "$(id -u)" -eq 0 ] && IS_ROOT=1
+HAVE_RUSTUP=0
+command -v rustup >/dev/null 2>&1 && HAVE_RUSTUP=1
+# Asked from the firmware's directory: the toolchain cargo uses there.
+rustup_installed() { [ $HAVE_RUSTUP -eq 1 ] && (cd "$FW" && rustup target list --installed 2>/dev/null) || true; }
+
 installed_targets=""
-if command -v rustup >/dev/null 2>&1; then
-    installed_targets=$(rustup target list --installed 2>/dev/null || true)
+if [ "$TOOLCHAIN" != debian ]; then
+    installed_targets=$(rustup_installed)
+    # As root (CI), fetch the missing standard libraries with rustup; when
+    # it cannot (offline, no rustup), Debian's Rust builds core instead.
+    if [ $IS_ROOT -eq 1 ] && [ $HAVE_RUSTUP -eq 1 ]; then
+        mkdir -p "$OUT/logs"
+        for t in "${TARGETS[@]}"; do
+            grep -qx "$t" <<<"$installed_targets" && continue
+            if (cd "$FW" && timeout 300 rustup target add "$t") >"$OUT/logs/rustup-$t.log" 2>&1; then
+                echo "rustup target add $t: done"
+            else
+                echo "rustup target add $t: failed ($(grep -m 1 '^error' "$OUT/logs/rustup-$t.log" || echo "see ${OUT#"$ROOT"/}/logs/rustup-$t.log")); using Debian's Rust for it"
+            fi
+        done
+        installed_targets=$(rustup_installed)
+    fi
 fi
+declare -A MODE
 need_debian_rust=0
 for t in "${TARGETS[@]}"; do
-    if grep -qx "$t" <<<"$installed_targets"; then MODE[$t]=rustup; else MODE[$t]=debian; need_debian_rust=1; fi
+    if [ "$TOOLCHAIN" != debian ] && grep -qx "$t" <<<"$installed_targets"; then
+        MODE[$t]=rustup
+    elif [ "$TOOLCHAIN" = rustup ]; then
+        echo "check.sh: LAPWING_FW_TOOLCHAIN=rustup but rustup has no $t (rustup target add $t)" >&2
+        exit 2
+    else
+        MODE[$t]=debian
+        need_debian_rust=1
+    fi
 done
 
 debian_rust_ok() {
@@ -135,7 +193,7 @@ if [ $need_debian_rust -eq 1 ] && ! debian_rust_ok; then
     missing+=(rustc-web cargo-web rust-web-src)
 fi
 if [ ${#missing[@]} -gt 0 ]; then
-    if [ "$(id -u)" -eq 0 ]; then
+    if [ $IS_ROOT -eq 1 ]; then
         echo "installing: ${missing[*]}"
         export DEBIAN_FRONTEND=noninteractive
         apt-get update -qq
@@ -152,12 +210,14 @@ if [ $need_debian_rust -eq 1 ] && ! debian_rust_ok; then
     exit 2
 fi
 qemu-system-arm --version | head -n 1
+declare -A RUSTC_OF
 for t in "${TARGETS[@]}"; do
     if [ "${MODE[$t]}" = rustup ]; then
-        echo "$t: rustup target ($("$HOST_CARGO" --version))"
+        RUSTC_OF[$t]="$(cd "$FW" && rustc --version | cut -d' ' -f1-2) (rustup target)"
     else
-        echo "$t: Debian $(/usr/bin/rustc --version | cut -d' ' -f1-2) with -Zbuild-std=core"
+        RUSTC_OF[$t]="$(/usr/bin/rustc --version | cut -d' ' -f1-2) (Debian, -Zbuild-std=core)"
     fi
+    echo "$t: ${RUSTC_OF[$t]}"
 done
 
 # Runs cargo for the firmware crate (from its directory, so its
@@ -196,19 +256,27 @@ HELPER="$HOST_TARGET/release/examples/firmware_loop"
 
 phase "host: models, blobs, modules, inputs, host outputs ($STEPS steps each)"
 mkdir -p "$GEN" "$OUT/records" "$OUT/logs" "$OUT/elf"
-rm -f "$OUT"/records/*.json
+rm -f "$OUT"/records/*.json "$OUT/measurements.json" "$OUT/measurements.md"
 for model in demo deep; do
     for c in "${SELECTED[@]}"; do
         IFS='|' read -r _ m _ _ <<<"$c"
-        if [ "$m" = "$model" ]; then "$HELPER" shape "$model" "$GEN/shapes/$model"; break; fi
+        [ "$m" = "$model" ] || continue
+        if [ "$model" = demo ] && [ -f "$DEMO_MODEL" ]; then
+            echo "demo: ${DEMO_MODEL#"$ROOT"/}, calibrated on and fed with ${DEMO_DATA#"$ROOT"/}"
+        else
+            [ "$model" = demo ] && echo "demo: ${DEMO_MODEL#"$ROOT"/} does not exist; a synthetic model of its shape stands in"
+            "$HELPER" shape "$model" "$GEN/shapes/$model"
+        fi
+        break
     done
 done
 for c in "${SELECTED[@]}"; do
-    IFS='|' read -r name model scheme cell <<<"$c"
+    IFS='|' read -r name model scheme cell table <<<"$c"
     read -r st calib data _ <<<"$(model_files "$model")"
     d="$GEN/$name"
     mkdir -p "$d"
-    "$LAPWING" quantize "$st" --calib "$calib" --scheme "$scheme" --cell "$cell" -o "$d/model.lwq" >"$d/quantize.txt"
+    "$LAPWING" quantize "$st" --calib "$calib" --scheme "$scheme" --cell "$cell" --table "${table:-standard}" \
+        -o "$d/model.lwq" >"$d/quantize.txt"
     "$LAPWING" codegen "$d/model.lwq" -o "$d/model.rs" >/dev/null
     "$HELPER" inputs "$d/model.lwq" "$data" --steps "$STEPS" --config "$name" --dir "$d"
     "$LAPWING" run "$d/model.lwq" --data "$d/inputs.csv" -o "$d/host.csv" --raw-input >/dev/null
@@ -237,9 +305,10 @@ for t in "${TARGETS[@]}"; do
     phase "$t on QEMU $b ($cpu)"
     order=0
     for c in "${SELECTED[@]}"; do
-        IFS='|' read -r name model scheme cell <<<"$c"
+        IFS='|' read -r name model scheme cell table <<<"$c"
         order=$((order + 1))
         read -r _ _ _ label <<<"$(model_files "$model")"
+        [ -n "$table" ] && [ "$table" != standard ] && label="${label}_(${table}_table)"
         install_config "$name"
         echo "-- $name"
         log="$OUT/logs/$t/$name.log"
@@ -269,7 +338,9 @@ for t in "${TARGETS[@]}"; do
         if ! "$HELPER" record --log "$log" --host "$GEN/$name/host.csv" \
             --size "$(size_of "$OUT/elf/$t/$name.elf")" "${min_size[@]}" \
             --meta "config=$name" --meta "model=${label//_/ }" --meta "scheme=$scheme" --meta "cell=$cell" \
+            --meta "table=${table:-standard}" \
             --meta "order=$order" --meta "command=bash tools/firmware/check.sh --target $t --config $name" \
+            --meta "rustc=${RUSTC_OF[$t]}" --meta "model_file=${st#"$ROOT"/}" \
             --out "$OUT/records/$t.$name.json" || [ $status -ne 0 ]; then
             FAIL+=("$t $name: outputs or measurements failed (log: ${log#"$ROOT"/})")
         fi
@@ -328,6 +399,11 @@ done
 phase "summary"
 "$HELPER" summary --json "$OUT/measurements.json" --markdown "$OUT/measurements.md" --steps "$STEPS" \
     "$OUT"/records/*.json
+{
+    echo
+    echo "Compilers: $(for t in "${TARGETS[@]}"; do echo "$t ${RUSTC_OF[$t]}"; done | paste -sd ';' | sed 's/;/; /g')."
+    echo "QEMU: $(qemu-system-arm --version | head -n 1 | sed 's/^QEMU emulator version //')."
+} | tee -a "$OUT/measurements.md"
 echo
 echo "wrote ${OUT#"$ROOT"/}/measurements.json and measurements.md ($((SECONDS - START)) s)"
 if [ ${#FAIL[@]} -gt 0 ]; then
