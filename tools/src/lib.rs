@@ -10,6 +10,8 @@
 //!   (min/max or percentile);
 //! - [`quantize`]: float model + ranges -> integer model (`w8a16`, `w8a8`,
 //!   `w16a16`), with the accumulator bound check;
+//!   [`rounding`]: data-aware weight rounding (error feedback, bias
+//!   correction);
 //! - [`blob`]: the device blob (`.lwq`) encoder and aligned loading;
 //!   [`output`]: atomic output files;
 //! - [`pipeline`]: the file-to-file steps the CLI runs;
@@ -47,6 +49,7 @@ pub mod pipeline;
 pub mod plot;
 pub mod quantize;
 pub mod report;
+pub mod rounding;
 pub mod scenario;
 pub mod sweep;
 pub mod synth;

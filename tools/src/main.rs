@@ -15,6 +15,7 @@ use lapwing_tools::import::{ImportOptions, Layout};
 use lapwing_tools::pipeline::{self, NormSource, RunValues, Runnable};
 use lapwing_tools::quantize::{quantize, QuantOptions};
 use lapwing_tools::report::{self, ReportOptions};
+use lapwing_tools::rounding::{quantize_data_aware, Rounding, RoundingOptions};
 use lapwing_tools::scenario::{self, DataSet, Scenario};
 use lapwing_tools::{codegen, data, demo, example, export, inspect, output, plot, sweep};
 use std::path::{Path, PathBuf};
@@ -146,6 +147,22 @@ enum TableArg {
     Compact,
 }
 
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+enum RoundingArg {
+    /// Each weight to its nearest step.
+    Nearest,
+    /// Column by column, each rounding error spread over the columns not yet rounded, weighted by the
+    /// calibration data's input statistics (GPTQ-style, Frantar et al. 2022); typically several dB better.
+    Compensated,
+}
+
+fn rounding_of(r: RoundingArg) -> Rounding {
+    match r {
+        RoundingArg::Nearest => Rounding::Nearest,
+        RoundingArg::Compensated => Rounding::Compensated,
+    }
+}
+
 #[derive(Clone, Copy, Debug, ValueEnum)]
 enum LayoutArg {
     /// Lapwing's own names: layers.{k}.w_x, layers.{k}.w_h, layers.{k}.b, head.w, head.b.
@@ -241,6 +258,12 @@ struct QuantizeArgs {
     /// Percentile of |value| used by --range percentile.
     #[arg(long, default_value_t = 99.99, help_heading = "Calibration")]
     percentile: f64,
+    /// How weights are rounded to integers.
+    #[arg(long, value_enum, default_value = "nearest", help_heading = "Scheme")]
+    rounding: RoundingArg,
+    /// Shift each bias by the expected pre-activation error of its row's rounded weights over the calibration data.
+    #[arg(long, help_heading = "Scheme")]
+    bias_correction: bool,
     /// Headroom factor above the calibrated range (>= 1).
     #[arg(long, default_value_t = 1.25, help_heading = "Calibration")]
     headroom: f32,
@@ -544,11 +567,28 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
     }
     let ranges = pipeline::calibrate_file(&prep.model, &a.calib, method, true)?;
     outln!("calibrated on {} rows of {} ({})", ranges.steps, a.calib.display(), range_name(method));
-    let mut q =
-        quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?;
-    if a.detector.detector {
-        let rows = data::read(&a.calib, false)?.rows;
-        let p = detector::calibrate(&prep.model, &rows, &det_opts)
+    let ropts = RoundingOptions {
+        rounding: rounding_of(a.rounding),
+        bias_correction: a.bias_correction,
+        progress: true,
+        ..RoundingOptions::default()
+    };
+    let calib_rows =
+        if a.detector.detector || ropts.needs_data() { Some(data::read(&a.calib, false)?.rows) } else { None };
+    let mut q = match &calib_rows {
+        Some(rows) if ropts.needs_data() => quantize_data_aware(&prep.model, &ranges, &opts, &ropts, rows)
+            .with_context(|| format!("{}: quantization with {} rounding", a.model.display(), ropts.rounding.name()))?,
+        _ => quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?,
+    };
+    if ropts.needs_data() {
+        outln!(
+            "weights rounded: {}{}",
+            ropts.rounding.name(),
+            if ropts.bias_correction { ", biases corrected" } else { "" }
+        );
+    }
+    if let (true, Some(rows)) = (a.detector.detector, &calib_rows) {
+        let p = detector::calibrate(&prep.model, rows, &det_opts)
             .with_context(|| format!("{}: detector calibration", a.calib.display()))?;
         q.detector = Some(detector::to_fixed(&p, &q.input_scale, &q.output_scale)?);
         outln!(

@@ -121,7 +121,7 @@ impl OwnedWeights {
         }
     }
 
-    fn from_values(v: Vec<i32>, scheme: Scheme) -> Self {
+    pub(crate) fn from_values(v: Vec<i32>, scheme: Scheme) -> Self {
         match scheme {
             Scheme::W16A16 => OwnedWeights::I16(v.into_iter().map(|x| x as i16).collect()),
             Scheme::W8A16 | Scheme::W8A8 => OwnedWeights::I8(v.into_iter().map(|x| x as i8).collect()),
@@ -260,7 +260,7 @@ fn quantize_rows(w: &[f32], cols: usize, col_scale: &[f64], qmax: i32) -> (Vec<i
 
 /// For int8 weights, refuses a row whose accumulator could overflow `i32`
 /// (int16 weights are pre-shifted by the core and cannot overflow).
-fn check_bound(q: &[i32], cols: usize, scheme: Scheme, what: &str) -> Result<()> {
+pub(crate) fn check_bound(q: &[i32], cols: usize, scheme: Scheme, what: &str) -> Result<()> {
     if scheme.weight_bytes() != 1 {
         return Ok(());
     }
@@ -296,7 +296,7 @@ fn check_ranges(r: &Ranges) -> Result<()> {
 
 /// Real value of one int16 LSB for a calibrated |x| maximum. A quantity that
 /// was exactly 0 over the whole calibration set gets the range +-1.
-fn scale_for(absmax: f32, headroom: f32) -> f64 {
+pub(crate) fn scale_for(absmax: f32, headroom: f32) -> f64 {
     let m = absmax as f64 * headroom as f64;
     if m > 0.0 && m.is_finite() {
         m / 32_767.0
