@@ -307,7 +307,7 @@ for t in "${TARGETS[@]}"; do
     for c in "${SELECTED[@]}"; do
         IFS='|' read -r name model scheme cell table <<<"$c"
         order=$((order + 1))
-        read -r _ _ _ label <<<"$(model_files "$model")"
+        read -r st _ _ label <<<"$(model_files "$model")"
         [ -n "$table" ] && [ "$table" != standard ] && label="${label}_(${table}_table)"
         install_config "$name"
         echo "-- $name"
