@@ -5,8 +5,8 @@
 //!    `demo-data/scenario.toml` (deterministic);
 //! 2. take the shipped float model `demo-data/model.safetensors`, or fit a
 //!    new one on the training set (`--refit`);
-//! 3. quantize (`w8a16`, `c16`) with the anomaly detector calibrated on the
-//!    calibration set;
+//! 3. quantize (`w8a16`, `c16`, compensated weight rounding unless asked
+//!    otherwise) with the anomaly detector calibrated on the calibration set;
 //! 4. report float vs device code on the test set, with plots;
 //! 5. run the device detector on the test set against the labelled faults;
 //! 6. generate the firmware module.
@@ -19,8 +19,9 @@ use crate::calibrate::RangeMethod;
 use crate::detector::{self, DetectOptions, DetectorOptions};
 use crate::fit::{fit, FitOptions};
 use crate::import::{import, ImportOptions};
-use crate::quantize::{quantize, QuantOptions};
+use crate::quantize::QuantOptions;
 use crate::report::{report_file, ReportOptions};
+use crate::rounding::{quantize_data_aware, Rounding, RoundingOptions};
 use crate::scenario::{self, DataSet, Scenario};
 use crate::{codegen, data, export, inspect, output, pipeline, plot};
 use anyhow::{Context, Result};
@@ -38,6 +39,8 @@ pub struct DemoOptions {
     pub out: PathBuf,
     /// Fit a new float model instead of using the shipped one.
     pub refit: bool,
+    /// Weight rounding of the quantizer.
+    pub rounding: Rounding,
     /// Print progress lines.
     pub verbose: bool,
 }
@@ -47,6 +50,8 @@ pub struct DemoOptions {
 pub struct DemoSummary {
     /// Scheme of the blob.
     pub scheme: String,
+    /// Weight rounding (`nearest` or `compensated`).
+    pub rounding: String,
     /// Test rows.
     pub test_rows: usize,
     /// Output SQNR over every test row, dB (fault rows included, where the
@@ -123,15 +128,16 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
         opts.demo_data.join("model.safetensors")
     };
 
-    say("quantizing (w8a16, c16) with the anomaly detector");
+    say(&format!("quantizing (w8a16, c16, {} rounding) with the anomaly detector", opts.rounding.name()));
     let imported = import(&model_path, &ImportOptions::default())?;
     let mut model = imported.model.clone();
     if let Some(n) = &imported.norm {
         model.fold_normalization(&n.mean, &n.std)?;
     }
     let ranges = pipeline::calibrate_file(&model, &calib, RangeMethod::MinMax, false)?;
-    let mut q = quantize(&model, &ranges, &QuantOptions::default())?;
     let calib_rows = data::read(&calib, false)?.rows;
+    let ropts = RoundingOptions { rounding: opts.rounding, ..Default::default() };
+    let mut q = quantize_data_aware(&model, &ranges, &QuantOptions::default(), &ropts, &calib_rows)?;
     let params = detector::calibrate(&model, &calib_rows, &DetectorOptions::default())?;
     q.detector = Some(detector::to_fixed(&params, &q.input_scale, &q.output_scale)?);
     let blob_path = opts.out.join("demo.lwq");
@@ -170,6 +176,7 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
         .fold(f64::INFINITY, f64::min);
     Ok(DemoSummary {
         scheme: report.scheme.clone(),
+        rounding: opts.rounding.name().to_string(),
         test_rows,
         output_sqnr_db: report.tensors.get("output").map_or(f64::NAN, |t| t.sqnr_db),
         output_sqnr_median_window_db: report.drift.get("output").map_or(f64::NAN, |d| median(&d.windows_sqnr_db)),
@@ -208,8 +215,9 @@ impl DemoSummary {
             writeln!(s, "Lapwing demo: greenhouse ventilation line (invented scenario), {} test rows", self.test_rows);
         let _ = writeln!(
             s,
-            "  quantized model {} vs the float reference: output SQNR {:.1} dB in the median window, {:.1} dB over all rows",
-            self.scheme, self.output_sqnr_median_window_db, self.output_sqnr_db
+            "  quantized model {} ({} rounding) vs the float reference: output SQNR {:.1} dB in the median window, \
+             {:.1} dB over all rows",
+            self.scheme, self.rounding, self.output_sqnr_median_window_db, self.output_sqnr_db
         );
         let _ = writeln!(
             s,

@@ -420,6 +420,9 @@ struct SweepArgs {
     /// Error budget (TOML): rows within it are marked and the smallest is recommended.
     #[arg(long, help_heading = "Checks")]
     budget: Option<PathBuf>,
+    /// Weight roundings to try, comma-separated (each with every scheme, cell and table).
+    #[arg(long, value_enum, value_delimiter = ',', default_value = "nearest,compensated", help_heading = "Scheme")]
+    rounding: Vec<RoundingArg>,
     /// Write the sweep as JSON to this file (`-` for standard output).
     #[arg(long, help_heading = "Output")]
     json: Option<PathBuf>,
@@ -457,6 +460,9 @@ struct DemoArgs {
     /// The demo-data directory (scenario.toml and model.safetensors).
     #[arg(long, default_value = "demo-data")]
     demo_data: PathBuf,
+    /// How the quantizer rounds weights.
+    #[arg(long, value_enum, default_value = "compensated")]
+    rounding: RoundingArg,
     /// Print the summary as JSON instead of text.
     #[arg(long)]
     json: bool,
@@ -577,7 +583,14 @@ fn quantize_cmd(a: &QuantizeArgs) -> anyhow::Result<ExitCode> {
         if a.detector.detector || ropts.needs_data() { Some(data::read(&a.calib, false)?.rows) } else { None };
     let mut q = match &calib_rows {
         Some(rows) if ropts.needs_data() => quantize_data_aware(&prep.model, &ranges, &opts, &ropts, rows)
-            .with_context(|| format!("{}: quantization with {} rounding", a.model.display(), ropts.rounding.name()))?,
+            .with_context(|| {
+                format!(
+                    "{}: quantization with {} rounding on {}",
+                    a.model.display(),
+                    ropts.rounding.name(),
+                    a.calib.display()
+                )
+            })?,
         _ => quantize(&prep.model, &ranges, &opts).with_context(|| format!("{}: quantization", a.model.display()))?,
     };
     if ropts.needs_data() {
@@ -727,15 +740,25 @@ fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
     let ranges = pipeline::calibrate_file(&prep.model, &a.calib, RangeMethod::MinMax, true)?;
     let data = data::read(&a.data, true)?;
     data.expect_features(prep.model.input_len())?;
-    let total = sweep::configurations(a.headroom).len() as u64;
+    let mut roundings: Vec<Rounding> = a.rounding.iter().map(|r| rounding_of(*r)).collect();
+    roundings.dedup();
+    let calib_rows =
+        if roundings.iter().any(|r| *r != Rounding::Nearest) { data::read(&a.calib, false)?.rows } else { Vec::new() };
+    let total = sweep::count(a.headroom, &roundings) as u64;
     let bar = indicatif::ProgressBar::new(total).with_style(
         indicatif::ProgressStyle::with_template("{msg} [{bar:30}] {pos}/{len} configurations")
             .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
     );
     bar.set_message("sweep");
-    let result = sweep::sweep(&prep.model, &ranges, &data.rows, a.headroom, budget.as_ref(), |done, _| {
-        bar.set_position(done as u64)
-    });
+    let input = sweep::SweepInput {
+        ranges: &ranges,
+        calib_rows: &calib_rows,
+        rows: &data.rows,
+        headroom: a.headroom,
+        roundings: &roundings,
+        budget: budget.as_ref(),
+    };
+    let result = sweep::sweep(&prep.model, &input, |done, _| bar.set_position(done as u64));
     bar.finish_and_clear();
     let result = result?;
     let to_stdout = a.json.as_deref().is_some_and(|p| p.as_os_str() == "-");
@@ -853,7 +876,13 @@ fn simulate_cmd(a: &SimulateArgs) -> anyhow::Result<ExitCode> {
 }
 
 fn demo_cmd(a: &DemoArgs) -> anyhow::Result<ExitCode> {
-    let opts = demo::DemoOptions { demo_data: a.demo_data.clone(), out: a.out.clone(), refit: a.refit, verbose: true };
+    let opts = demo::DemoOptions {
+        demo_data: a.demo_data.clone(),
+        out: a.out.clone(),
+        refit: a.refit,
+        rounding: rounding_of(a.rounding),
+        verbose: true,
+    };
     let summary = demo::run(&opts)?;
     if a.json {
         outln!("{}", serde_json::to_string_pretty(&summary)?);

@@ -199,7 +199,8 @@ fn feedback_factor(h: &[f64], n: usize, damping: f64, what: &str) -> Result<Vec<
     let l = cholesky(&h, n).ok_or_else(|| anyhow!("{what}: the damped second moments are not positive definite"))?;
     let inv = inverse_from_cholesky(&l, n);
     // U = (lower Cholesky factor of inv)^T.
-    let l2 = cholesky(&inv, n).ok_or_else(|| anyhow!("{what}: the inverse second moments are not positive definite"))?;
+    let l2 =
+        cholesky(&inv, n).ok_or_else(|| anyhow!("{what}: the inverse second moments are not positive definite"))?;
     let mut u = vec![0.0; n * n];
     for i in 0..n {
         for j in 0..=i {
@@ -344,10 +345,7 @@ fn compensate_matrix(
 /// Bias shift of each row: `-(W_q - W) E[z]` in real pre-activation units,
 /// with `W` and `W_q` in folded units (`z` divided by the column scales).
 fn bias_shift(w: &[Vec<f64>], wq: &[Vec<f64>], mean: &[f64]) -> Vec<f64> {
-    w.iter()
-        .zip(wq)
-        .map(|(a, b)| -a.iter().zip(b).zip(mean).map(|((a, b), m)| (b - a) * m).sum::<f64>())
-        .collect()
+    w.iter().zip(wq).map(|(a, b)| -a.iter().zip(b).zip(mean).map(|((a, b), m)| (b - a) * m).sum::<f64>()).collect()
 }
 
 fn folded_rows(w: &[f32], cols: usize, col: &[f64]) -> Vec<Vec<f64>> {
@@ -359,7 +357,13 @@ fn int_rows(q: &[i32], cols: usize, steps: &[f64]) -> Vec<Vec<f64>> {
 }
 
 fn concat_rows(a: Vec<Vec<f64>>, b: Vec<Vec<f64>>) -> Vec<Vec<f64>> {
-    a.into_iter().zip(b).map(|(mut x, y)| { x.extend(y); x }).collect()
+    a.into_iter()
+        .zip(b)
+        .map(|(mut x, y)| {
+            x.extend(y);
+            x
+        })
+        .collect()
 }
 
 /// Quantizes `model` like [`quantize`], then, as `ropts` asks, re-rounds
@@ -460,8 +464,7 @@ pub fn quantize_data_aware(
         if ropts.bias_correction {
             let w = folded_rows(&h.w, h.input, &col);
             let wq = int_rows(&qw, h.input, &sw);
-            for (((qb, b), d), so) in
-                qh.bias.iter_mut().zip(&h.b).zip(bias_shift(&w, &wq, &mean)).zip(&q.output_scale)
+            for (((qb, b), d), so) in qh.bias.iter_mut().zip(&h.b).zip(bias_shift(&w, &wq, &mean)).zip(&q.output_scale)
             {
                 *qb = to_fixed_i32((*b as f64 + d) / *so as f64, 0);
             }
@@ -545,7 +548,8 @@ mod tests {
             let mut h = vec![0.0; n * n];
             for i in 0..n {
                 for j in 0..n {
-                    h[i * n + j] = (0..n).map(|k| a[i * n + k] * a[j * n + k]).sum::<f64>() + if i == j { 0.01 } else { 0.0 };
+                    h[i * n + j] =
+                        (0..n).map(|k| a[i * n + k] * a[j * n + k]).sum::<f64>() + if i == j { 0.01 } else { 0.0 };
                 }
             }
             let w: Vec<f64> = (0..n).map(|_| (lcg(&mut seed) - 0.5) * 2.0).collect();
@@ -554,16 +558,16 @@ mod tests {
             let rtn: Vec<i32> = w.iter().map(|v| to_fixed_i32(v / s, 0)).collect();
             let best = (0..5u32.pow(n as u32))
                 .map(|m| {
-                    let qb: Vec<i32> = rtn
-                        .iter()
-                        .enumerate()
-                        .map(|(i, r)| r - 2 + ((m / 5u32.pow(i as u32)) % 5) as i32)
-                        .collect();
+                    let qb: Vec<i32> =
+                        rtn.iter().enumerate().map(|(i, r)| r - 2 + ((m / 5u32.pow(i as u32)) % 5) as i32).collect();
                     loss(&w, &qb, s, &h)
                 })
                 .fold(f64::INFINITY, f64::min);
             let (lq, lr) = (loss(&w, &q, s, &h), loss(&w, &rtn, s, &h));
-            assert!(lq >= best * (1.0 - 1e-9), "below the optimum: impossible: {q:?} vs nearest {rtn:?}, {lq} < {best}");
+            assert!(
+                lq >= best * (1.0 - 1e-9),
+                "below the optimum: impossible: {q:?} vs nearest {rtn:?}, {lq} < {best}"
+            );
             sum_ratio += lq / best;
             sum_rtn_ratio += lr / best;
             if lq > lr * (1.0 + 1e-9) {
@@ -576,5 +580,30 @@ mod tests {
         // Measured: 1.355 vs 2.179 (nearest), worse than nearest in 18 of 200.
         assert!(mean * 1.5 <= mean_rtn, "compensated {mean:.3} vs nearest {mean_rtn:.3}");
         assert!(worse_than_rtn <= cases / 10, "worse than nearest in {worse_than_rtn} of {cases}");
+    }
+
+    #[test]
+    fn degenerate_statistics_are_clear_errors() {
+        // Inputs never driven: nothing to weigh the errors by.
+        let e = feedback_factor(&[0.0; 9], 3, 0.01, "layer 0").unwrap_err().to_string();
+        assert!(e.contains("layer 0") && e.contains("never drive"), "{e}");
+        // One dead column among live ones is decoupled, not an error.
+        let h = [2.0, 0.5, 0.0, 0.5, 1.0, 0.0, 0.0, 0.0, 0.0];
+        assert!(feedback_factor(&h, 3, 0.01, "layer 0").is_ok());
+    }
+
+    #[test]
+    fn too_few_calibration_rows_are_refused() {
+        let spec = crate::synth::ModelSpec { input: 4, hidden: 8, layers: 1, output: Some(4), gain: 1.0 };
+        let model = crate::synth::random_model(&spec, 3);
+        let rows = crate::synth::sine_mix(4, 40, 1);
+        let ranges = crate::calibrate::observe(&model, &rows).unwrap();
+        let ropts = RoundingOptions { rounding: Rounding::Compensated, ..Default::default() };
+        let e = quantize_data_aware(&model, &ranges, &QuantOptions::default(), &ropts, &rows).unwrap_err().to_string();
+        assert!(e.contains("at least 64 calibration rows") && e.contains("got 40"), "{e}");
+        // Nearest rounding needs no rows at all.
+        assert!(
+            quantize_data_aware(&model, &ranges, &QuantOptions::default(), &RoundingOptions::default(), &[]).is_ok()
+        );
     }
 }

@@ -1,12 +1,13 @@
-//! Precision sweep: quantize one float model with every scheme, cell width
-//! and activation table, report each on the same data, and recommend the
-//! smallest configuration (flash + RAM) that meets the budget.
+//! Precision sweep: quantize one float model with every scheme, cell width,
+//! activation table and weight rounding, report each on the same data, and
+//! recommend the smallest configuration (flash + RAM) that meets the budget.
 
 use crate::budget::Budget;
 use crate::calibrate::Ranges;
 use crate::float_model::FloatModelData;
-use crate::quantize::{quantize, QuantOptions};
+use crate::quantize::QuantOptions;
 use crate::report::{report_quantized, Report, ReportOptions};
+use crate::rounding::{quantize_data_aware, Rounding, RoundingOptions};
 use anyhow::{Context, Result};
 use lapwing::activation::TableKind;
 use lapwing::quant::{CellWidth, Scheme};
@@ -38,6 +39,8 @@ pub fn estimated_instructions(macs: usize, gate_rows: usize, units: usize) -> us
 /// One configuration's figures.
 #[derive(Clone, Debug, Serialize)]
 pub struct SweepRow {
+    /// Weight rounding (`nearest` or `compensated`).
+    pub rounding: String,
     /// `w8a16-c16-standard`, ...
     pub scheme: String,
     /// Model data in flash (blob + activation table).
@@ -92,6 +95,7 @@ fn row_of(r: &Report, budget: Option<&Budget>) -> Result<SweepRow> {
         None => (true, Vec::new()),
     };
     Ok(SweepRow {
+        rounding: String::new(),
         scheme: r.scheme.clone(),
         flash_bytes: r.footprint.flash_bytes,
         ram_bytes: r.footprint.ram_bytes,
@@ -107,54 +111,74 @@ fn row_of(r: &Report, budget: Option<&Budget>) -> Result<SweepRow> {
     })
 }
 
-/// Runs the sweep: `ranges` come from one calibration of `model`; every
-/// configuration is reported on `rows`. `progress` is called after each
-/// configuration with (done, total).
+/// What the sweep is given besides the model.
+pub struct SweepInput<'a> {
+    /// One calibration of the model.
+    pub ranges: &'a Ranges,
+    /// The calibration rows (needed by data-aware rounding; may be empty
+    /// when `roundings` is only [`Rounding::Nearest`]).
+    pub calib_rows: &'a [Vec<f32>],
+    /// Every configuration is reported on these rows.
+    pub rows: &'a [Vec<f32>],
+    /// Headroom factor above the calibrated ranges.
+    pub headroom: f32,
+    /// The weight roundings to try (each with every scheme, cell, table).
+    pub roundings: &'a [Rounding],
+    /// Rows within it are marked, the smallest recommended.
+    pub budget: Option<&'a Budget>,
+}
+
+/// How many configurations [`sweep`] tries for `roundings`.
+pub fn count(headroom: f32, roundings: &[Rounding]) -> usize {
+    configurations(headroom).len() * roundings.len()
+}
+
+/// Runs the sweep. `progress` is called after each configuration with
+/// (done, total).
 ///
 /// # Errors
-/// A configuration that cannot be quantized or reported, or a budget that
-/// cannot be checked.
-pub fn sweep(
-    model: &FloatModelData,
-    ranges: &Ranges,
-    rows: &[Vec<f32>],
-    headroom: f32,
-    budget: Option<&Budget>,
-    mut progress: impl FnMut(usize, usize),
-) -> Result<Sweep> {
-    let configs = configurations(headroom);
+/// A configuration that cannot be reported, or a budget that cannot be
+/// checked. A configuration that cannot be quantized is a row saying why.
+pub fn sweep(model: &FloatModelData, input: &SweepInput<'_>, mut progress: impl FnMut(usize, usize)) -> Result<Sweep> {
+    let configs = configurations(input.headroom);
+    let total = configs.len() * input.roundings.len();
     let units: usize = model.layers.iter().map(|l| l.hidden).sum();
-    let mut out = Vec::with_capacity(configs.len());
-    for (i, opts) in configs.iter().enumerate() {
-        let name = format!("{}-{}-{}", opts.scheme.name(), opts.cell.name(), opts.table.name());
-        let q = match quantize(model, ranges, opts) {
-            Ok(q) => q,
-            Err(e) => {
-                // Not buildable in this scheme: a row saying why, not an abort.
-                out.push(SweepRow {
-                    scheme: name,
-                    flash_bytes: 0,
-                    ram_bytes: 0,
-                    macs_per_step: 0,
-                    instructions_per_step_estimate: 0,
-                    output_sqnr_db: f64::NAN,
-                    hidden_sqnr_db: f64::NAN,
-                    drift_db: f64::NAN,
-                    saturation_rate: f64::NAN,
-                    within_budget: false,
-                    violations: vec![format!("cannot be built: {e:#}")],
-                    feasible: false,
-                });
-                progress(i + 1, configs.len());
-                continue;
-            }
-        };
-        let r = report_quantized(model, &q, rows, &ReportOptions::default())
-            .with_context(|| format!("configuration {name}"))?;
-        let mut row = row_of(&r, budget)?;
-        row.instructions_per_step_estimate = estimated_instructions(r.footprint.macs_per_step, 4 * units, units);
-        out.push(row);
-        progress(i + 1, configs.len());
+    let mut out = Vec::with_capacity(total);
+    for rounding in input.roundings {
+        let ropts = RoundingOptions { rounding: *rounding, ..Default::default() };
+        for opts in &configs {
+            let name = format!("{}-{}-{}", opts.scheme.name(), opts.cell.name(), opts.table.name());
+            let q = match quantize_data_aware(model, input.ranges, opts, &ropts, input.calib_rows) {
+                Ok(q) => q,
+                Err(e) => {
+                    // Not buildable in this scheme: a row saying why, not an abort.
+                    out.push(SweepRow {
+                        rounding: rounding.name().to_string(),
+                        scheme: name,
+                        flash_bytes: 0,
+                        ram_bytes: 0,
+                        macs_per_step: 0,
+                        instructions_per_step_estimate: 0,
+                        output_sqnr_db: f64::NAN,
+                        hidden_sqnr_db: f64::NAN,
+                        drift_db: f64::NAN,
+                        saturation_rate: f64::NAN,
+                        within_budget: false,
+                        violations: vec![format!("cannot be built: {e:#}")],
+                        feasible: false,
+                    });
+                    progress(out.len(), total);
+                    continue;
+                }
+            };
+            let r = report_quantized(model, &q, input.rows, &ReportOptions::default())
+                .with_context(|| format!("configuration {name}, {} rounding", rounding.name()))?;
+            let mut row = row_of(&r, input.budget)?;
+            row.rounding = rounding.name().to_string();
+            row.instructions_per_step_estimate = estimated_instructions(r.footprint.macs_per_step, 4 * units, units);
+            out.push(row);
+            progress(out.len(), total);
+        }
     }
     let recommended = out
         .iter()
@@ -166,7 +190,7 @@ pub fn sweep(
                 .then(b.output_sqnr_db.total_cmp(&a.output_sqnr_db))
         })
         .map(|(i, _)| i);
-    Ok(Sweep { steps: rows.len(), budget_checked: budget.is_some(), rows: out, recommended })
+    Ok(Sweep { steps: input.rows.len(), budget_checked: input.budget.is_some(), rows: out, recommended })
 }
 
 impl Sweep {
@@ -175,8 +199,9 @@ impl Sweep {
         let mut s = String::new();
         let _ = writeln!(
             s,
-            "{:<22} {:>7} {:>6} {:>6} {:>12} {:>8} {:>8} {:>7} {:>9}  {}",
+            "{:<22} {:<11} {:>7} {:>6} {:>6} {:>12} {:>8} {:>8} {:>7} {:>9}  {}",
             "configuration",
+            "rounding",
             "flash B",
             "RAM B",
             "MACs",
@@ -196,13 +221,14 @@ impl Sweep {
             };
             if !r.feasible {
                 let why = r.violations.first().map_or("", String::as_str);
-                let _ = writeln!(s, "{:<22} {why}", r.scheme);
+                let _ = writeln!(s, "{:<22} {:<11} {why}", r.scheme, r.rounding);
                 continue;
             }
             let _ = writeln!(
                 s,
-                "{:<22} {:>7} {:>6} {:>6} {:>12} {:>8.1} {:>8.1} {:>+7.2} {:>9.4}  {budget}{mark}",
+                "{:<22} {:<11} {:>7} {:>6} {:>6} {:>12} {:>8.1} {:>8.1} {:>+7.2} {:>9.4}  {budget}{mark}",
                 r.scheme,
+                r.rounding,
                 r.flash_bytes,
                 r.ram_bytes,
                 r.macs_per_step,
@@ -221,10 +247,16 @@ impl Sweep {
         );
         match (self.recommended, self.budget_checked) {
             (Some(i), true) => {
-                let _ = writeln!(s, "recommended: {} (smallest flash + RAM within budget)", self.rows[i].scheme);
+                let r = &self.rows[i];
+                let _ = writeln!(
+                    s,
+                    "recommended: {}, {} rounding (smallest flash + RAM within budget)",
+                    r.scheme, r.rounding
+                );
             }
             (Some(i), false) => {
-                let _ = writeln!(s, "smallest flash + RAM: {} (no budget given)", self.rows[i].scheme);
+                let r = &self.rows[i];
+                let _ = writeln!(s, "smallest flash + RAM: {}, {} rounding (no budget given)", r.scheme, r.rounding);
             }
             (None, _) => {
                 let _ = writeln!(s, "no configuration meets the budget");

@@ -7,8 +7,10 @@
 //! twin's. Runs the whole pipeline (about 40 s in release builds).
 
 use lapwing_tools::demo::{run, DemoOptions};
+use lapwing_tools::rounding::Rounding;
 use std::path::Path;
 
+/// With the demo's default, compensated weight rounding.
 #[test]
 fn demo_meets_the_detection_targets() {
     let out = tempfile::tempdir().unwrap();
@@ -16,6 +18,7 @@ fn demo_meets_the_detection_targets() {
         demo_data: Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-data"),
         out: out.path().to_path_buf(),
         refit: false,
+        rounding: Rounding::Compensated,
         verbose: false,
     };
     let s = run(&opts).unwrap();

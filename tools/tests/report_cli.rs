@@ -145,8 +145,9 @@ fn sweep_reports_every_configuration_and_recommends_one() {
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
     let rows = v["rows"].as_array().unwrap();
-    // 3 schemes x 2 cells x 2 tables.
-    assert_eq!(rows.len(), 12);
+    // 3 schemes x 2 cells x 2 tables x 2 roundings (nearest, compensated).
+    assert_eq!(rows.len(), 24);
+    assert_eq!(rows.iter().filter(|r| r["rounding"] == "compensated").count(), 12);
     let i = v["recommended"].as_u64().expect("a recommendation") as usize;
     let best = &rows[i];
     assert_eq!(best["within_budget"], true);
@@ -155,7 +156,16 @@ fn sweep_reports_every_configuration_and_recommends_one() {
         assert!(size(best) <= size(r), "{} is not the smallest passing row", best["scheme"]);
     }
     // w16a16 weights take more flash than w8a16's, and w8a8 less RAM.
-    let find = |s: &str| rows.iter().find(|r| r["scheme"] == s).unwrap();
-    assert!(find("w16a16-c16-standard")["flash_bytes"].as_u64() > find("w8a16-c16-standard")["flash_bytes"].as_u64());
-    assert!(find("w8a8-c16-standard")["ram_bytes"].as_u64() < find("w8a16-c16-standard")["ram_bytes"].as_u64());
+    let find = |s: &str, rounding: &str| rows.iter().find(|r| r["scheme"] == s && r["rounding"] == rounding).unwrap();
+    let (w16, w8, w8a8) = (
+        find("w16a16-c16-standard", "nearest"),
+        find("w8a16-c16-standard", "nearest"),
+        find("w8a8-c16-standard", "nearest"),
+    );
+    assert!(w16["flash_bytes"].as_u64() > w8["flash_bytes"].as_u64());
+    assert!(w8a8["ram_bytes"].as_u64() < w8["ram_bytes"].as_u64());
+    // The rounding changes which integers are stored, not the footprint.
+    let comp = find("w8a16-c16-standard", "compensated");
+    assert_eq!(comp["flash_bytes"], w8["flash_bytes"]);
+    assert_eq!(comp["ram_bytes"], w8["ram_bytes"]);
 }
