@@ -451,6 +451,16 @@ fn shape_text(dims: &[Dim]) -> String {
 /// the file, or not finite; the layout options (they name tensors in the
 /// other formats).
 pub fn import_onnx(path: &Path, opts: &ImportOptions) -> Result<Imported> {
+    // Names in the file may hold any character: keep the message on one line.
+    import_graph(path, opts).map_err(|e| anyhow!("{}", one_line(&format!("{e:#}"))))
+}
+
+/// `s` with control characters (newlines, ...) escaped.
+fn one_line(s: &str) -> String {
+    s.chars().map(|c| if c.is_control() { c.escape_default().to_string() } else { c.to_string() }).collect()
+}
+
+fn import_graph(path: &Path, opts: &ImportOptions) -> Result<Imported> {
     if opts.layout.is_some() || opts.prefix.is_some() || opts.head_prefix.is_some() {
         bail!(
             "the layout and prefix options name tensors in safetensors/npz files; an .onnx file's graph says \
@@ -892,6 +902,9 @@ impl<'g> GraphReader<'g> {
         let [dirs, rows, xs] = w_shape.as_slice() else {
             bail!("input `W` (`{}`) has shape {w_shape:?}, expected [1, 4H, X]", name_of(1));
         };
+        if *xs == 0 {
+            bail!("input `W` (`{}`) has shape {w_shape:?}: no input features", name_of(1));
+        }
         if *dirs != 1 {
             bail!("input `W` (`{}`) has {dirs} directions; Lapwing runs one forward direction", name_of(1));
         }
@@ -1311,7 +1324,7 @@ fn onnx_layer(w: &[f32], r: &[f32], b: Option<&[f32]>, x: usize, h: usize) -> Re
     let w_h = reorder(r, h)?;
     let bias = match b {
         Some(b) => {
-            let (wb, rb) = b.split_at(4 * h);
+            let (wb, rb) = b.split_at_checked(4 * h).ok_or_else(|| anyhow!("bias shorter than 8H values"))?;
             let sum: Vec<f32> = wb.iter().zip(rb).map(|(a, c)| a + c).collect();
             reorder(&sum, 1)?
         }
