@@ -1203,8 +1203,7 @@ impl<'g> GraphReader<'g> {
         let input = |i: usize| inputs.get(i).cloned().flatten();
         let need = |i: usize| input(i).ok_or_else(|| anyhow!("input {i} is missing"));
         if let Some(Value::Opaque(why)) = inputs.iter().flatten().find(|v| matches!(v, Value::Opaque(_))) {
-            // Sizes of an opaque value are not needed by Shape-free ops below;
-            // keep the first reason so the error explains the root.
+            // Pass the first reason on, so an error at the use names the root.
             return Err(anyhow!("{why}"));
         }
         match op {
