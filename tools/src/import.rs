@@ -7,6 +7,9 @@
 //! stored as `np.savez` writes them, or deflated as `np.savez_compressed`
 //! does; read by a small zip reader in this module), or a directory of `.npy`
 //! files (tensor name = file name without `.npy`; other files are skipped).
+//! A path ending in `.onnx` is an ONNX graph, read by [`crate::onnx`]
+//! ([`Container::Onnx`], [`Layout::Onnx`]); the rest of this page is about
+//! tensor files.
 //! Tensors must be float32 or float64 (float64 is rounded to the nearest f32;
 //! a finite value outside the f32 range is an error); `.npy` arrays may be
 //! big-endian or Fortran-ordered. Any other dtype is an error naming the tensor
@@ -104,10 +107,14 @@ pub enum Layout {
     /// `[X, 4H]` kernels per layer group, `<p>/kernel`,
     /// `<p>/recurrent_kernel`, `<p>/bias`; gate order `i,f,c,o`.
     Fused,
+    /// An ONNX graph's `LSTM` nodes (`W`, `R`, `B`; gate order `i,o,f,c`),
+    /// see [`crate::onnx`]. Not a tensor-naming scheme: never detected from
+    /// names nor forced, so not in [`Layout::ALL`].
+    Onnx,
 }
 
 impl Layout {
-    /// Every layout, in the order detection reports them.
+    /// Every tensor-naming layout, in the order detection reports them.
     pub const ALL: [Layout; 3] = [Layout::Lapwing, Layout::Split, Layout::Fused];
 
     /// The layout's name as the CLI spells it: `lapwing`, `split` or `fused`.
@@ -116,6 +123,7 @@ impl Layout {
             Layout::Lapwing => "lapwing",
             Layout::Split => "split",
             Layout::Fused => "fused",
+            Layout::Onnx => "onnx",
         }
     }
 
@@ -125,6 +133,7 @@ impl Layout {
         match self {
             Layout::Lapwing | Layout::Split => "i,f,g,o",
             Layout::Fused => "i,f,c,o",
+            Layout::Onnx => "i,o,f,c",
         }
     }
 
@@ -161,6 +170,8 @@ pub enum Container {
     Npz,
     /// A directory of `.npy` files.
     NpyDir,
+    /// An `.onnx` file.
+    Onnx,
 }
 
 impl Container {
@@ -170,6 +181,7 @@ impl Container {
             Container::Safetensors => "safetensors file",
             Container::Npz => "NumPy .npz archive",
             Container::NpyDir => "directory of .npy files",
+            Container::Onnx => "ONNX file",
         }
     }
 }
@@ -259,9 +271,10 @@ impl Imported {
     }
 }
 
-/// Imports a float LSTM from `path` (a `.safetensors` file, a `.npz` archive
-/// or a directory of `.npy` files), detecting the layout unless `opts`
-/// forces one.
+/// Imports a float LSTM from `path` (a `.safetensors` file, a `.npz` archive,
+/// a directory of `.npy` files, or an `.onnx` file read by
+/// [`crate::onnx::import_onnx`]), detecting the layout unless `opts` forces
+/// one.
 ///
 /// The result has passed [`FloatModelData::check_finite`] and
 /// [`FloatModelData::view`]; every weight is the source value (float64
@@ -282,6 +295,9 @@ pub fn import(path: &Path, opts: &ImportOptions) -> Result<Imported> {
 }
 
 fn import_inner(path: &Path, opts: &ImportOptions) -> Result<Imported> {
+    if path.extension().and_then(|e| e.to_str()).is_some_and(|e| e.eq_ignore_ascii_case("onnx")) && !path.is_dir() {
+        return crate::onnx::import_onnx(path, opts);
+    }
     let store = load(path)?;
     if store.entries.is_empty() {
         bail!("the {} holds no tensors", store.container.describe());
@@ -310,6 +326,7 @@ fn import_inner(path: &Path, opts: &ImportOptions) -> Result<Imported> {
         Layout::Lapwing => b.lapwing(),
         Layout::Split => b.split(opts),
         Layout::Fused => b.fused(opts),
+        Layout::Onnx => bail!("the onnx layout is read from .onnx files only"),
     };
     let (model, norm) = match built {
         Ok(v) => v,
@@ -388,7 +405,8 @@ fn load(path: &Path) -> Result<Store> {
             "a single .npy file holds one tensor; put the model's .npy files in one directory and import the directory"
         ),
         _ => bail!(
-            "unsupported file type{}: expected a .safetensors file, a .npz archive or a directory of .npy files",
+            "unsupported file type{}: expected a .safetensors file, a .npz archive, a directory of .npy files or an \
+             .onnx file",
             if ext.is_empty() { String::new() } else { format!(" `.{ext}`") }
         ),
     }

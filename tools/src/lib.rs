@@ -3,7 +3,8 @@
 //! One module per job, each with typed options and results, so the CLI, the
 //! tests and the demo call the same functions. In data-path order:
 //! - [`import`]: float weights from safetensors / npz / `.npy` directories in
-//!   three tensor layouts; [`float_model`]: the owned float model and
+//!   three tensor layouts; [`onnx`]: LSTM graphs from `.onnx` files;
+//!   [`float_model`]: the owned float model and
 //!   normalization folding;
 //! - [`data`]: CSV and `.npy` data, streamed;
 //! - [`calibrate`]: ranges observed by running the float model over data
@@ -44,6 +45,7 @@ pub mod float_model;
 pub mod import;
 pub mod inspect;
 pub mod metrics;
+pub mod onnx;
 pub mod output;
 pub mod pipeline;
 pub mod plot;

@@ -233,7 +233,7 @@ impl ModelArgs {
 /// Options of `quantize`.
 #[derive(clap::Args, Debug)]
 struct QuantizeArgs {
-    /// Float model: .safetensors, .npz, or a directory of .npy files.
+    /// Float model: .safetensors, .npz, a directory of .npy files, or .onnx.
     model: PathBuf,
     /// Calibration data (normal running): CSV with a header, or .npy [T, X].
     #[arg(long, help_heading = "Input")]
@@ -337,7 +337,7 @@ struct DetectArgs {
 /// Options of `run`.
 #[derive(clap::Args, Debug)]
 struct RunArgs {
-    /// A device blob (.lwq) or a float model (.safetensors, .npz, .npy directory).
+    /// A device blob (.lwq) or a float model (.safetensors, .npz, .npy directory, .onnx).
     model: PathBuf,
     /// Input data: CSV with a header, or .npy [T, X].
     #[arg(long, help_heading = "Input")]
@@ -363,7 +363,7 @@ struct RunArgs {
 struct ReportArgs {
     /// The device blob (.lwq).
     blob: PathBuf,
-    /// The float model the blob was made from (.safetensors, .npz, .npy directory).
+    /// The float model the blob was made from (.safetensors, .npz, .npy directory, .onnx).
     #[arg(long = "float", help_heading = "Input")]
     float_model: PathBuf,
     /// Data to compare on: CSV with a header, or .npy [T, X] (ideally not the calibration data).
@@ -404,7 +404,7 @@ fn parse_trace(s: &str) -> Result<(usize, usize), String> {
 /// Options of `sweep`.
 #[derive(clap::Args, Debug)]
 struct SweepArgs {
-    /// Float model (.safetensors, .npz, .npy directory).
+    /// Float model (.safetensors, .npz, .npy directory, .onnx).
     model: PathBuf,
     /// Calibration data (normal running).
     #[arg(long, help_heading = "Input")]

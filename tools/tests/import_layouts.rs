@@ -484,9 +484,9 @@ fn files_that_are_not_models_give_clear_errors() {
     let e = import_err(&d.join("absent.safetensors"), &none);
     assert_has(&e, &["absent.safetensors", "file not found"]);
 
-    let p = d.join("model.onnx");
+    let p = d.join("model.pt");
     std::fs::write(&p, b"x").unwrap();
-    assert_has(&import_err(&p, &none), &["model.onnx", "unsupported file type `.onnx`", ".safetensors"]);
+    assert_has(&import_err(&p, &none), &["model.pt", "unsupported file type `.pt`", ".safetensors", ".onnx"]);
 
     let p = d.join("w.npy");
     std::fs::copy(data_dir().join("layouts/x4_h16_l2_split_npy/proj.bias.npy"), &p).unwrap();
