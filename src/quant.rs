@@ -227,11 +227,11 @@ impl Elem for i16 {
 ///
 /// The kernels are plain Rust written so that the compiler maps them onto
 /// the target's multiply-accumulate instructions (checked in the firmware's
-/// disassembly, see README's performance section): four rows per pass, so
-/// each activation load serves four multiplies, and for int16 weights the
-/// products taken in adjacent pairs (`w[2k] v[2k] + w[2k+1] v[2k+1]`), which
-/// LLVM turns into one dual multiply-accumulate (`smlald`) on cores with the
-/// DSP extension. Every sum is exact, so the result does not depend on the
+/// disassembly, see README's performance section): int8 rows two per pass,
+/// so each activation load serves two multiplies (`ldrsb`, `smlabb` on DSP
+/// cores; four rows spill registers), int16 rows one per pass, which LLVM
+/// turns into dual multiply-accumulates (`smlald`) on cores with the DSP
+/// extension. Every sum is exact, so the result does not depend on the
 /// order of the additions and is the same integer on every target.
 trait Weight: Elem {
     /// Exact `sum w[i] * v[i]`.
@@ -284,13 +284,14 @@ impl Weight for i16 {
     fn dot<A: Elem>(w: &[i16], v: &[A]) -> i64 {
         w.iter().zip(v).fold(0i64, |acc, (a, b)| acc.wrapping_add((a.widen() * b.widen()) as i64))
     }
-    /// One row per pass, products in adjacent pairs: the shape LLVM turns
-    /// into a dual 16-bit multiply with 64-bit accumulate (`smlald`) on
-    /// DSP cores. Sharing the activation loads between rows would stop
-    /// that (each load must feed one multiply pair).
+    /// One row per pass: the plain fold, which LLVM turns into dual 16-bit
+    /// multiplies with 64-bit accumulate (`smlald`) on DSP cores. Sharing
+    /// the activation loads between rows stops that (each load must feed
+    /// one multiply pair), and so did an explicit pairwise loop.
     #[inline]
     fn dot4<A: Elem>(w: [&[i16]; 4], v: &[A]) -> [i64; 4] {
-        w.map(|r| dot_pairs_i16(r, v))
+        let [w0, w1, w2, w3] = w;
+        [Self::dot(w0, v), Self::dot(w1, v), Self::dot(w2, v), Self::dot(w3, v)]
     }
     fn slice(w: Weights<'_>) -> &[i16] {
         match w {
@@ -298,29 +299,6 @@ impl Weight for i16 {
             Weights::I8(_) => &[],
         }
     }
-}
-
-/// Exact dot product of an int16 row with `v`, products in adjacent pairs.
-#[inline]
-fn dot_pairs_i16<A: Elem>(w: &[i16], v: &[A]) -> i64 {
-    let mut acc = 0i64;
-    let n = v.len().min(w.len());
-    let (v, w) = (head(v, n), head(w, n));
-    for (p, x) in w.chunks_exact(2).zip(v.chunks_exact(2)) {
-        if let ([p0, p1], [x0, x1]) = (p, x) {
-            acc = acc.wrapping_add((p0.widen() * x0.widen()) as i64).wrapping_add((p1.widen() * x1.widen()) as i64);
-        }
-    }
-    if n % 2 == 1 {
-        acc = acc.wrapping_add((w.last().map_or(0, |p| p.widen()) * v.last().map_or(0, |x| x.widen())) as i64);
-    }
-    acc
-}
-
-/// The first `n` elements (all of them when shorter).
-#[inline(always)]
-fn head<T>(s: &[T], n: usize) -> &[T] {
-    s.get(..n).unwrap_or(s)
 }
 
 /// A hidden-state element: its format and the hidden update's rounding.
@@ -921,11 +899,30 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     }
 }
 
-/// Gate `g`'s `hd` rows of `n` weights each, one by one (empty when the
+/// Gate `g`'s `hd` rows of `n` weights each, one by one (none when the
 /// matrix is shorter, which validated layers never are).
 #[inline(always)]
-fn gate_rows<W>(w: &[W], hd: usize, n: usize, g: usize) -> core::slice::ChunksExact<'_, W> {
-    w.get(g * hd * n..(g + 1) * hd * n).unwrap_or(&[]).chunks_exact(n.max(1))
+fn gate_rows<W>(w: &[W], hd: usize, n: usize, g: usize) -> Rows<'_, W> {
+    Rows { rest: w.get(g * hd * n..(g + 1) * hd * n).unwrap_or(&[]), n }
+}
+
+/// Consecutive rows of `n` elements. Not `chunks_exact`: its assertion
+/// that `n > 0` is a panic path the optimiser keeps at `opt-level = "z"`.
+/// A zero `n` (never for validated layers) yields empty rows, and the
+/// caller's zip with the hidden state bounds the iteration.
+struct Rows<'a, W> {
+    rest: &'a [W],
+    n: usize,
+}
+
+impl<'a, W> Iterator for Rows<'a, W> {
+    type Item = &'a [W];
+    #[inline(always)]
+    fn next(&mut self) -> Option<&'a [W]> {
+        let (row, rest) = self.rest.split_at_checked(self.n)?;
+        self.rest = rest;
+        Some(row)
+    }
 }
 
 #[cfg(test)]
