@@ -44,7 +44,7 @@
 //! assert!((t as f64 / 2f64.powi(31) - 0.761_594_2).abs() < 3e-5);
 //! ```
 
-use crate::fixed_point::{round_shr, shift_signed};
+use crate::fixed_point::round_shr;
 
 /// Fractional bits of a gate pre-activation (`i32`, LSB `2^-19`).
 pub const PRE_FRAC: u32 = 19;
@@ -95,7 +95,9 @@ impl ActTable {
         let fb = PRE_FRAC - self.log2_knots;
         let j = (within >> fb) as usize;
         let frac = within & ((1 << fb) - 1);
-        let f14 = shift_signed(frac, 14 - fb as i32);
+        // frac < 2^fb: a left shift never saturates, a right shift rounds
+        // a non-negative value (the same integers as `shift_signed`).
+        let f14 = if fb <= 14 { frac << (14 - fb) } else { (frac + (1 << (fb - 15))) >> (fb - 14) };
         let per_seg = (1usize << self.log2_knots) + 1;
         let base = seg * per_seg + j;
         let y0 = self.mant.get(base).copied().unwrap_or(0) as i32;

@@ -36,15 +36,11 @@ pub const fn mul_q31(a: i32, b: i32) -> i32 {
         return i32::MAX;
     }
     let ab = (a as i64) * (b as i64);
-    // |ab| <= 2^62, so the magnitude form below cannot overflow i64.
-    let mag = (ab.unsigned_abs() + (1u64 << 30)) >> 31;
-    // mag <= 2^31, and equals 2^31 only for a positive product that was
-    // excluded above or a negative one (-2^31 fits).
-    if ab < 0 {
-        (mag as i64).wrapping_neg() as i32
-    } else {
-        mag as i32
-    }
+    // |ab| < 2^62 here, so adding 2^30 cannot overflow. Ties away from
+    // zero in one step: floor((ab + 2^30) / 2^31) for ab >= 0 and
+    // floor((ab + 2^30 - 1) / 2^31) = -floor((|ab| + 2^30) / 2^31) for
+    // ab < 0 (branch-free: a multiply, an add with carry and a shift).
+    ((ab + (1 << 30) - (ab < 0) as i64) >> 31) as i32
 }
 
 /// Rounding arithmetic right shift: `round(x / 2^shift)`, ties away from zero.

@@ -223,10 +223,22 @@ impl Elem for i16 {
     }
 }
 
-/// A weight element with its exact dot product.
+/// A weight element with its exact dot products.
+///
+/// The kernels are plain Rust written so that the compiler maps them onto
+/// the target's multiply-accumulate instructions (checked in the firmware's
+/// disassembly, see README's performance section): int8 rows two per pass,
+/// so each activation load serves two multiplies (`ldrsb`, `smlabb` on DSP
+/// cores; four rows spill registers), int16 rows one per pass, which LLVM
+/// turns into dual multiply-accumulates (`smlald`) on cores with the DSP
+/// extension. Every sum is exact, so the result does not depend on the
+/// order of the additions and is the same integer on every target.
 trait Weight: Elem {
     /// Exact `sum w[i] * v[i]`.
     fn dot<A: Elem>(w: &[Self], v: &[A]) -> i64;
+    /// Exact `sum w[g][i] * v[i]` for four rows `g` at once (each row as
+    /// long as `v`; a shorter row sums over its length).
+    fn dot4<A: Elem>(w: [&[Self]; 4], v: &[A]) -> [i64; 4];
     /// The slice when `w` holds this type (validated by [`QModel::new`]),
     /// else empty.
     fn slice(w: Weights<'_>) -> &[Self];
@@ -238,6 +250,24 @@ impl Weight for i8 {
     #[inline]
     fn dot<A: Elem>(w: &[i8], v: &[A]) -> i64 {
         w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(a.widen() * b.widen())) as i64
+    }
+    /// Two rows per pass (two `i32` accumulators): four would leave
+    /// too few registers on Cortex-M and spill.
+    #[inline]
+    fn dot4<A: Elem>(w: [&[i8]; 4], v: &[A]) -> [i64; 4] {
+        let [w0, w1, w2, w3] = w;
+        let dot2 = |w0: &[i8], w1: &[i8]| {
+            let (mut a0, mut a1) = (0i32, 0i32);
+            for ((p, q), x) in w0.iter().zip(w1).zip(v) {
+                let x = x.widen();
+                a0 = a0.wrapping_add(p.widen() * x);
+                a1 = a1.wrapping_add(q.widen() * x);
+            }
+            (a0 as i64, a1 as i64)
+        };
+        let (a0, a1) = dot2(w0, w1);
+        let (a2, a3) = dot2(w2, w3);
+        [a0, a1, a2, a3]
     }
     fn slice(w: Weights<'_>) -> &[i8] {
         match w {
@@ -253,6 +283,15 @@ impl Weight for i16 {
     #[inline]
     fn dot<A: Elem>(w: &[i16], v: &[A]) -> i64 {
         w.iter().zip(v).fold(0i64, |acc, (a, b)| acc.wrapping_add((a.widen() * b.widen()) as i64))
+    }
+    /// One row per pass: the plain fold, which LLVM turns into dual 16-bit
+    /// multiplies with 64-bit accumulate (`smlald`) on DSP cores. Sharing
+    /// the activation loads between rows stops that (each load must feed
+    /// one multiply pair), and so did an explicit pairwise loop.
+    #[inline]
+    fn dot4<A: Elem>(w: [&[i16]; 4], v: &[A]) -> [i64; 4] {
+        let [w0, w1, w2, w3] = w;
+        [Self::dot(w0, v), Self::dot(w1, v), Self::dot(w2, v), Self::dot(w3, v)]
     }
     fn slice(w: Weights<'_>) -> &[i16] {
         match w {
@@ -447,7 +486,9 @@ pub fn worst_case_accumulator(row: &[i8]) -> i64 {
 fn check_bound(what: &'static str, layer: usize, w: Weights<'_>, cols: usize) -> Result<u8, Error> {
     match w {
         Weights::I8(w) => {
-            for (row, r) in (0..w.len() / cols.max(1)).map(|k| w.get(k * cols..(k + 1) * cols).unwrap_or(&[])).enumerate() {
+            for (row, r) in
+                (0..w.len() / cols.max(1)).map(|k| w.get(k * cols..(k + 1) * cols).unwrap_or(&[])).enumerate()
+            {
                 if worst_case_accumulator(r) > i32::MAX as i64 {
                     return Err(Error::AccumulatorBound { what, layer, row });
                 }
@@ -479,12 +520,9 @@ pub fn pre_shift_for(worst: i64) -> u8 {
 /// [`round_shr`]); `n` in `1..=62`.
 #[inline]
 fn round_shr64(x: i64, n: u32) -> i64 {
-    let half = 1i64 << (n - 1);
-    if x >= 0 {
-        (x + half) >> n
-    } else {
-        -((half - x) >> n)
-    }
+    // Branch-free, the same integers: floor((x + half - [x < 0]) / 2^n)
+    // rounds ties away from zero (|x| < 2^62, so the sum cannot overflow).
+    (x + (1i64 << (n - 1)) - (x < 0) as i64) >> n
 }
 
 /// A quantized dense head `y = requant(W h) + b` (borrowed).
@@ -673,12 +711,14 @@ impl<'a> QModel<'a> {
     ) -> Result<(), Error> {
         let cw = self.cell.words();
         let layer_words: usize = self.layers.iter().map(|l| self.scheme.hidden_words(l.hidden) + l.hidden * cw).sum();
-        let (mut rest, scratch) = state.split_at_mut_checked(layer_words).ok_or(Error::StateSize { expected: layer_words, got: 0 })?;
+        let (mut rest, scratch) =
+            state.split_at_mut_checked(layer_words).ok_or(Error::StateSize { expected: layer_words, got: 0 })?;
         let scratch: &mut [A] = cast_state(scratch)?;
         let mut prev: Option<&[A]> = None;
         for (k, layer) in self.layers.iter().enumerate() {
             let hw = self.scheme.hidden_words(layer.hidden);
-            let (hc, tail) = rest.split_at_mut_checked(hw + layer.hidden * cw).ok_or(Error::StateSize { expected: hw, got: 0 })?;
+            let (hc, tail) =
+                rest.split_at_mut_checked(hw + layer.hidden * cw).ok_or(Error::StateSize { expected: hw, got: 0 })?;
             rest = tail;
             let (h_words, c) = hc.split_at_mut_checked(hw).ok_or(Error::StateSize { expected: hw, got: 0 })?;
             let h: &mut [A] = cast_state(h_words)?;
@@ -696,7 +736,8 @@ impl<'a> QModel<'a> {
             Some(head) => {
                 let w = W::slice(head.w);
                 let n = head.input;
-                let rows = head.bias.iter().enumerate().map(|(r, b)| (r, (w.get(r * n..(r + 1) * n).unwrap_or(&[]), b)));
+                let rows =
+                    head.bias.iter().enumerate().map(|(r, b)| (r, (w.get(r * n..(r + 1) * n).unwrap_or(&[]), b)));
                 for (o, (r, (row, b))) in out.iter_mut().zip(rows) {
                     *o = sat_i16(head.rq.apply(r, W::dot(row, last), head.pre).saturating_add(*b));
                 }
@@ -797,6 +838,10 @@ struct StepCtx<'l, 'a> {
 
 /// One layer's step: weights `W`, hidden state `A`, input `X` (the model
 /// input for layer 0, the previous layer's hidden state after).
+///
+/// Unit `j`'s four gate rows (`j`, `H + j`, `2H + j`, `3H + j`) are computed
+/// in one pass of [`Weight::dot4`] per matrix, walking every per-row array
+/// with one zipped iterator (no index arithmetic or bounds check per row).
 fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     ctx: &StepCtx<'_, '_>,
     x: &[X],
@@ -809,16 +854,26 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     let (hd, xi) = (layer.hidden, layer.input);
     let frac = layer.cell_frac as u32;
     let (w_x, w_h) = (W::slice(layer.w_x), W::slice(layer.w_h));
-    let pre_of = |r: usize, h: &[A]| -> i32 {
-        let wx = w_x.get(r * xi..(r + 1) * xi).unwrap_or(&[]);
-        let wh = w_h.get(r * hd..(r + 1) * hd).unwrap_or(&[]);
-        let b = layer.bias.get(r).copied().unwrap_or(0);
-        let ax = layer.rq_x.apply(r, W::dot(wx, x), layer.pre_x);
-        let ah = layer.rq_h.apply(r, W::dot(wh, h), layer.pre_h);
-        ax.saturating_add(ah).saturating_add(b)
-    };
-    for (j, hn) in scratch.iter_mut().enumerate().take(hd) {
-        let pre = [pre_of(j, h), pre_of(hd + j, h), pre_of(2 * hd + j, h), pre_of(3 * hd + j, h)];
+    let (pre_x, pre_h) = (layer.pre_x, layer.pre_h);
+    // Gate g's weight rows (rows g*H .. (g+1)*H), unit by unit, walked by
+    // zipped iterators: no index arithmetic or bounds check per row.
+    let gate = |g: usize| gate_rows(w_x, hd, xi, g).zip(gate_rows(w_h, hd, hd, g));
+    let units = gate(0).zip(gate(1)).zip(gate(2)).zip(gate(3));
+    for (j, ((((g0, g1), g2), g3), hn)) in units.zip(scratch.iter_mut()).enumerate() {
+        let r = [j, hd + j, 2 * hd + j, 3 * hd + j];
+        let ax = W::dot4([g0.0, g1.0, g2.0, g3.0], x);
+        let ah = W::dot4([g0.1, g1.1, g2.1, g3.1], h);
+        let pre_of = |g: usize| -> i32 {
+            let (r, ax, ah) = match g {
+                0 => (r[0], ax[0], ah[0]),
+                1 => (r[1], ax[1], ah[1]),
+                2 => (r[2], ax[2], ah[2]),
+                _ => (r[3], ax[3], ah[3]),
+            };
+            let b = layer.bias.get(r).copied().unwrap_or(0);
+            layer.rq_x.apply(r, ax, pre_x).saturating_add(layer.rq_h.apply(r, ah, pre_h)).saturating_add(b)
+        };
+        let pre = [pre_of(0), pre_of(1), pre_of(2), pre_of(3)];
         let gi = sigmoid(ctx.table, pre[0]);
         let gf = sigmoid(ctx.table, pre[1]);
         let gg = tanh(ctx.table, pre[2]);
@@ -841,6 +896,32 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     }
     for (hv, s) in h.iter_mut().zip(scratch.iter()) {
         *hv = *s;
+    }
+}
+
+/// Gate `g`'s `hd` rows of `n` weights each, one by one (none when the
+/// matrix is shorter, which validated layers never are).
+#[inline(always)]
+fn gate_rows<W>(w: &[W], hd: usize, n: usize, g: usize) -> Rows<'_, W> {
+    Rows { rest: w.get(g * hd * n..(g + 1) * hd * n).unwrap_or(&[]), n }
+}
+
+/// Consecutive rows of `n` elements. Not `chunks_exact`: its assertion
+/// that `n > 0` is a panic path the optimiser keeps at `opt-level = "z"`.
+/// A zero `n` (never for validated layers) yields empty rows, and the
+/// caller's zip with the hidden state bounds the iteration.
+struct Rows<'a, W> {
+    rest: &'a [W],
+    n: usize,
+}
+
+impl<'a, W> Iterator for Rows<'a, W> {
+    type Item = &'a [W];
+    #[inline(always)]
+    fn next(&mut self) -> Option<&'a [W]> {
+        let (row, rest) = self.rest.split_at_checked(self.n)?;
+        self.rest = rest;
+        Some(row)
     }
 }
 
