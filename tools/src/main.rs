@@ -420,6 +420,13 @@ struct SweepArgs {
     /// Error budget (TOML): rows within it are marked and the smallest is recommended.
     #[arg(long, help_heading = "Checks")]
     budget: Option<PathBuf>,
+    /// Emulated measurements of the firmware check (`target/firmware/measurements.json`, written by
+    /// `tools/firmware/check.sh`): instruction counts are scaled from them instead of the formula.
+    #[arg(long, requires = "target", help_heading = "Checks")]
+    firmware: Option<PathBuf>,
+    /// The target whose measurements `--firmware` uses (e.g. thumbv7em-none-eabihf).
+    #[arg(long, requires = "firmware", help_heading = "Checks")]
+    target: Option<String>,
     /// Weight roundings to try, comma-separated (each with every scheme, cell and table).
     #[arg(long, value_enum, value_delimiter = ',', default_value = "nearest,compensated", help_heading = "Scheme")]
     rounding: Vec<RoundingArg>,
@@ -736,6 +743,10 @@ fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
         anyhow::bail!("--headroom {} must be a number >= 1", a.headroom);
     }
     let budget = a.budget.as_deref().map(Budget::load).transpose()?;
+    let measured = match (&a.firmware, &a.target) {
+        (Some(f), Some(t)) => Some(sweep::MeasuredCost::load(f, t)?),
+        _ => None,
+    };
     let prep = pipeline::prepare(&a.model, &a.model_args.import_options(), a.model_args.norm(), Some(&a.calib), true)?;
     let ranges = pipeline::calibrate_file(&prep.model, &a.calib, RangeMethod::MinMax, true)?;
     let data = data::read(&a.data, true)?;
@@ -757,6 +768,7 @@ fn sweep_cmd(a: &SweepArgs) -> anyhow::Result<ExitCode> {
         headroom: a.headroom,
         roundings: &roundings,
         budget: budget.as_ref(),
+        measured: measured.as_ref(),
     };
     let result = sweep::sweep(&prep.model, &input, |done, _| bar.set_position(done as u64));
     bar.finish_and_clear();

@@ -36,6 +36,72 @@ pub fn estimated_instructions(macs: usize, gate_rows: usize, units: usize) -> us
     2 * macs + 40 * gate_rows + 80 * units
 }
 
+/// Instructions per MAC measured by the firmware check
+/// (`tools/firmware/check.sh`, `target/firmware/measurements.json`) on one
+/// target, per configuration name (`w8a16-c16-standard`), from the
+/// demo-shaped model's runs (X=4, H=32, head Y=4).
+#[derive(Clone, Debug, Default)]
+pub struct MeasuredCost {
+    /// The target the figures are from (`thumbv7em-none-eabihf`).
+    pub target: String,
+    /// Configuration name -> (instructions per MAC, MACs per step of the measured model).
+    pub per_mac: std::collections::BTreeMap<String, (f64, usize)>,
+}
+
+impl MeasuredCost {
+    /// Reads the firmware check's JSON and keeps `target`'s runs.
+    ///
+    /// # Errors
+    /// A file that cannot be read or is not the check's JSON (each problem
+    /// names the file and the field), or no run on `target` (the error lists
+    /// the targets the file has).
+    pub fn load(path: &std::path::Path, target: &str) -> Result<Self> {
+        let text = std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))?;
+        let v: serde_json::Value = serde_json::from_str(&text).with_context(|| {
+            format!("{}: not JSON (expected the firmware check's measurements.json)", path.display())
+        })?;
+        let runs = v.get("runs").and_then(serde_json::Value::as_array).with_context(|| {
+            format!("{}: no `runs` array (expected the firmware check's measurements.json)", path.display())
+        })?;
+        let mut targets = std::collections::BTreeSet::new();
+        let mut per_mac = std::collections::BTreeMap::new();
+        for (i, r) in runs.iter().enumerate() {
+            let field = |k: &str| r.get(k).with_context(|| format!("{}: runs[{i}] has no `{k}`", path.display()));
+            let t = field("target")?.as_str().unwrap_or_default();
+            targets.insert(t.to_string());
+            if t != target || r.get("kind").and_then(serde_json::Value::as_str) != Some("run") {
+                continue;
+            }
+            let num = |k: &str| -> Result<f64> {
+                field(k)?
+                    .as_f64()
+                    .filter(|x| x.is_finite() && *x > 0.0)
+                    .with_context(|| format!("{}: runs[{i}].{k} is not a positive number", path.display()))
+            };
+            let (ipm, macs) = (num("instructions_per_mac")?, num("macs_per_step")? as usize);
+            let name = format!(
+                "{}-{}-{}",
+                field("scheme")?.as_str().unwrap_or_default(),
+                field("cell")?.as_str().unwrap_or_default(),
+                r.get("table").and_then(serde_json::Value::as_str).unwrap_or("standard")
+            );
+            // Only the demo-shaped model (X=4, H=32, head Y=4): per-MAC costs
+            // of much smaller models are dominated by per-unit work.
+            if r.get("model").and_then(serde_json::Value::as_str).is_some_and(|m| m.starts_with("demo")) {
+                per_mac.insert(name, (ipm, macs));
+            }
+        }
+        if per_mac.is_empty() {
+            anyhow::bail!(
+                "{}: no measured run of the demo-shaped model on target `{target}` (the file has targets: {})",
+                path.display(),
+                targets.into_iter().collect::<Vec<_>>().join(", ")
+            );
+        }
+        Ok(MeasuredCost { target: target.to_string(), per_mac })
+    }
+}
+
 /// One configuration's figures.
 #[derive(Clone, Debug, Serialize)]
 pub struct SweepRow {
@@ -51,6 +117,11 @@ pub struct SweepRow {
     pub macs_per_step: usize,
     /// Instructions per step: an estimate (see [`estimated_instructions`]).
     pub instructions_per_step_estimate: usize,
+    /// With measured costs ([`MeasuredCost`]): the emulated instructions per
+    /// MAC of the same configuration on the measured target, times this
+    /// model's MACs per step; `None` when that configuration was not
+    /// measured.
+    pub instructions_per_step_scaled: Option<usize>,
     /// Head output SQNR, dB.
     pub output_sqnr_db: f64,
     /// Worst layer's hidden-state SQNR, dB.
@@ -72,6 +143,8 @@ pub struct SweepRow {
 /// The sweep's result.
 #[derive(Clone, Debug, Serialize)]
 pub struct Sweep {
+    /// The target of the measured instruction costs, when given.
+    pub measured_target: Option<String>,
     /// Steps each configuration was reported on.
     pub steps: usize,
     /// Whether a budget was checked.
@@ -101,6 +174,7 @@ fn row_of(r: &Report, budget: Option<&Budget>) -> Result<SweepRow> {
         ram_bytes: r.footprint.ram_bytes,
         macs_per_step: r.footprint.macs_per_step,
         instructions_per_step_estimate: 0,
+        instructions_per_step_scaled: None,
         output_sqnr_db: r.tensors.get("output").map_or(f64::NAN, |t| t.sqnr_db),
         hidden_sqnr_db: hidden,
         drift_db: r.drift.get("output").map_or(f64::NAN, |d| d.drift_db),
@@ -126,6 +200,8 @@ pub struct SweepInput<'a> {
     pub roundings: &'a [Rounding],
     /// Rows within it are marked, the smallest recommended.
     pub budget: Option<&'a Budget>,
+    /// Measured instruction costs of one target (else the formula).
+    pub measured: Option<&'a MeasuredCost>,
 }
 
 /// How many configurations [`sweep`] tries for `roundings`.
@@ -159,6 +235,7 @@ pub fn sweep(model: &FloatModelData, input: &SweepInput<'_>, mut progress: impl 
                         ram_bytes: 0,
                         macs_per_step: 0,
                         instructions_per_step_estimate: 0,
+                        instructions_per_step_scaled: None,
                         output_sqnr_db: f64::NAN,
                         hidden_sqnr_db: f64::NAN,
                         drift_db: f64::NAN,
@@ -175,7 +252,10 @@ pub fn sweep(model: &FloatModelData, input: &SweepInput<'_>, mut progress: impl 
                 .with_context(|| format!("configuration {name}, {} rounding", rounding.name()))?;
             let mut row = row_of(&r, input.budget)?;
             row.rounding = rounding.name().to_string();
-            row.instructions_per_step_estimate = estimated_instructions(r.footprint.macs_per_step, 4 * units, units);
+            let macs = r.footprint.macs_per_step;
+            row.instructions_per_step_estimate = estimated_instructions(macs, 4 * units, units);
+            row.instructions_per_step_scaled =
+                input.measured.and_then(|m| m.per_mac.get(&name)).map(|&(ipm, _)| (ipm * macs as f64).round() as usize);
             out.push(row);
             progress(out.len(), total);
         }
@@ -190,7 +270,13 @@ pub fn sweep(model: &FloatModelData, input: &SweepInput<'_>, mut progress: impl 
                 .then(b.output_sqnr_db.total_cmp(&a.output_sqnr_db))
         })
         .map(|(i, _)| i);
-    Ok(Sweep { steps: input.rows.len(), budget_checked: input.budget.is_some(), rows: out, recommended })
+    Ok(Sweep {
+        measured_target: input.measured.map(|m| m.target.clone()),
+        steps: input.rows.len(),
+        budget_checked: input.budget.is_some(),
+        rows: out,
+        recommended,
+    })
 }
 
 impl Sweep {
@@ -205,7 +291,7 @@ impl Sweep {
             "flash B",
             "RAM B",
             "MACs",
-            "instr (est)",
+            if self.measured_target.is_some() { "instr (meas)" } else { "instr (est)" },
             "out dB",
             "hid dB",
             "drift",
@@ -224,6 +310,11 @@ impl Sweep {
                 let _ = writeln!(s, "{:<22} {:<11} {why}", r.scheme, r.rounding);
                 continue;
             }
+            let instr = match (&self.measured_target, r.instructions_per_step_scaled) {
+                (None, _) => r.instructions_per_step_estimate.to_string(),
+                (Some(_), Some(n)) => n.to_string(),
+                (Some(_), None) => "-".to_string(),
+            };
             let _ = writeln!(
                 s,
                 "{:<22} {:<11} {:>7} {:>6} {:>6} {:>12} {:>8.1} {:>8.1} {:>+7.2} {:>9.4}  {budget}{mark}",
@@ -232,19 +323,32 @@ impl Sweep {
                 r.flash_bytes,
                 r.ram_bytes,
                 r.macs_per_step,
-                r.instructions_per_step_estimate,
+                instr,
                 r.output_sqnr_db,
                 r.hidden_sqnr_db,
                 r.drift_db,
                 100.0 * r.saturation_rate
             );
         }
-        let _ = writeln!(
-            s,
-            "\n{} steps per configuration. \"instr (est)\" is an estimate (2 per MAC + 40 per gate row + 80 per \
-             unit), not a measurement.",
-            self.steps
-        );
+        let _ = writeln!(s, "\n{} steps per configuration.", self.steps);
+        match &self.measured_target {
+            Some(t) => {
+                let _ = writeln!(
+                    s,
+                    "\"instr (meas)\": the emulated instructions per MAC of each configuration on {t} \
+                     (tools/firmware/check.sh, demo-shaped model X4 H32 Y4) times this model's MACs: a scaling, exact only \
+                     for that shape (per-unit work weighs more in smaller models); \"-\" where not measured."
+                );
+            }
+            None => {
+                let _ = writeln!(
+                    s,
+                    "\"instr (est)\" is an estimate (2 per MAC + 40 per gate row + 80 per unit), not a \
+                     measurement; --firmware target/firmware/measurements.json --target T scales the emulated \
+                     measurements of tools/firmware/check.sh instead."
+                );
+            }
+        }
         match (self.recommended, self.budget_checked) {
             (Some(i), true) => {
                 let r = &self.rows[i];

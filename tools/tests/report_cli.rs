@@ -169,3 +169,65 @@ fn sweep_reports_every_configuration_and_recommends_one() {
     assert_eq!(comp["flash_bytes"], w8["flash_bytes"]);
     assert_eq!(comp["ram_bytes"], w8["ram_bytes"]);
 }
+
+/// `sweep --firmware`: instruction counts scaled from the firmware check's
+/// measurements of the demo-shaped model on one target (here a small file
+/// in the check's format); configurations it did not measure show none.
+#[test]
+fn sweep_scales_measured_instruction_counts() {
+    let dir = tempfile::tempdir().unwrap();
+    let meas = dir.path().join("measurements.json");
+    let run = |target: &str, model: &str, scheme: &str, ipm: f64| {
+        serde_json::json!({"kind": "run", "target": target, "model": model, "scheme": scheme, "cell": "c16",
+            "table": "standard", "instructions_per_mac": ipm, "macs_per_step": 4736})
+    };
+    let file = serde_json::json!({"runs": [
+        run("thumbv7em-none-eabihf", "demo X4 H32 Y4", "w8a16", 10.0),
+        run("thumbv7em-none-eabihf", "example X4 H16x2 Y2", "w8a8", 99.0),
+        run("thumbv6m-none-eabi", "demo X4 H32 Y4", "w8a8", 20.0),
+    ]});
+    std::fs::write(&meas, file.to_string()).unwrap();
+    let json = dir.path().join("sweep.json");
+    let args = |target: &str| {
+        vec![
+            "sweep".to_string(),
+            example("lstm_x4_h16.safetensors"),
+            "--calib".into(),
+            example("signal.csv"),
+            "--data".into(),
+            example("signal_test.csv"),
+            "--headroom".into(),
+            "1.6".into(),
+            "--rounding".into(),
+            "nearest".into(),
+            "--firmware".into(),
+            meas.display().to_string(),
+            "--target".into(),
+            target.to_string(),
+            "--json".into(),
+            json.display().to_string(),
+        ]
+    };
+    let a = args("thumbv7em-none-eabihf");
+    let o = lapwing(&a.iter().map(String::as_str).collect::<Vec<_>>());
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
+    assert_eq!(v["measured_target"], "thumbv7em-none-eabihf");
+    for r in v["rows"].as_array().unwrap() {
+        let scaled = &r["instructions_per_step_scaled"];
+        if r["scheme"] == "w8a16-c16-standard" {
+            // 10 instructions per MAC x the example's 3,360 MACs per step.
+            assert_eq!(r["macs_per_step"], 3360);
+            assert_eq!(scaled, 33_600, "{r}");
+        } else {
+            // Not measured on this target, or measured on another model shape only.
+            assert!(scaled.is_null(), "{r}");
+        }
+    }
+    // A target the file does not have: exit 2, naming the file and the targets it has.
+    let b = args("thumbv8m.main-none-eabihf");
+    let o = lapwing(&b.iter().map(String::as_str).collect::<Vec<_>>());
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("measurements.json") && e.contains("thumbv6m-none-eabi"), "{e}");
+}
