@@ -32,7 +32,7 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use std::cell::Cell;
 use std::fmt::Write as _;
 use std::fs::File;
-use std::io::{self, BufReader, Read};
+use std::io::{self, BufReader, Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::rc::Rc;
 
@@ -515,13 +515,55 @@ impl NpyShape {
     }
 }
 
+/// Longest `.npy` header accepted, in bytes (numpy writes well under 1 KiB
+/// for a 2-D array and refuses headers over 10,000 bytes by default).
+const MAX_NPY_HEADER_BYTES: u64 = 1 << 16;
+
+/// Checks the `.npy` preamble (magic, version, header length) before `npyz`
+/// reads the header, so a file claiming a header of gigabytes is refused
+/// without allocating it; leaves `file` at its start.
+fn check_npy_preamble(path: &Path, file: &mut File, file_len: Option<u64>) -> Result<()> {
+    let name = path.display();
+    let mut pre = Vec::with_capacity(12);
+    file.by_ref().take(12).read_to_end(&mut pre).with_context(|| format!("{name}: cannot read"))?;
+    file.seek(SeekFrom::Start(0)).with_context(|| format!("{name}: cannot read"))?;
+    if pre.is_empty() {
+        bail!("{name}: not a valid .npy file: the file is empty");
+    }
+    if !pre.starts_with(b"\x93NUMPY") {
+        bail!("{name}: not a valid .npy file: it does not start with the .npy magic \\x93NUMPY");
+    }
+    let field = |range: std::ops::Range<usize>| {
+        pre.get(range).map(|b| b.iter().rev().fold(0u64, |a, &x| a << 8 | u64::from(x)))
+    };
+    let (header_len, preamble) = match pre.get(6).copied() {
+        Some(1) => (field(8..10), 10u64),
+        Some(2 | 3) => (field(8..12), 12u64),
+        Some(v) => bail!("{name}: not a valid .npy file: format version {v} is not supported (1, 2 or 3)"),
+        None => (None, 0),
+    };
+    let Some(header_len) = header_len else {
+        bail!("{name}: not a valid .npy file: the file is truncated inside the preamble ({} bytes)", pre.len());
+    };
+    if header_len > MAX_NPY_HEADER_BYTES {
+        bail!("{name}: not a valid .npy file: the header claims {header_len} bytes (at most {MAX_NPY_HEADER_BYTES})");
+    }
+    if let Some(len) = file_len {
+        if preamble + header_len > len {
+            bail!("{name}: the file is truncated: the header claims {header_len} bytes but the file has {len} in all");
+        }
+    }
+    Ok(())
+}
+
 fn npy_rows(
     path: &Path,
     progress: bool,
     f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
 ) -> Result<Vec<String>> {
     let name = path.display();
-    let (file, file_len) = open(path)?;
+    let (mut file, file_len) = open(path)?;
+    check_npy_preamble(path, &mut file, file_len)?;
     let consumed = Rc::new(Cell::new(0u64));
     let reader = CountingReader { inner: BufReader::new(file), count: Rc::clone(&consumed) };
     let npy = npyz::NpyFile::new(reader).with_context(|| format!("{name}: not a valid .npy file"))?;
@@ -909,6 +951,33 @@ mod tests {
         assert_has(&err("<f4", false, &[3, 2], &[0; 20]), &["data.npy", "truncated", "24 bytes", "20"]);
         let (_dir, path) = file("data.npy", "not numpy at all");
         assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "not a valid .npy"]);
+    }
+
+    /// Found by the `data_npy` fuzz target: a version-2 preamble claiming a
+    /// header of 2.4 GB made `npyz` allocate it before reading. The preamble
+    /// is now checked first, against a limit and the file's length.
+    #[test]
+    fn npy_huge_header_length_is_refused_before_allocating() {
+        let bytes: [u8; 30] = [
+            147, 78, 85, 77, 80, 89, 2, 0, 229, 118, 2, 147, 78, 85, 77, 123, 39, 100, 101, 39, 115, 60, 114, 123, 39,
+            100, 101, 39, 115, 60,
+        ];
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.npy");
+        fs::write(&path, bytes).unwrap();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "header claims 2466412261 bytes"]);
+        // Within the limit but longer than the file: truncated.
+        let mut v1 = npy_bytes("<f4", false, &[1, 1], &le_f32(&[1.0]));
+        v1[8..10].copy_from_slice(&4000u16.to_le_bytes());
+        fs::write(&path, &v1).unwrap();
+        assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "truncated", "4000 bytes"]);
+        for (bytes, what) in
+            [(&b""[..], "empty"), (&b"\x93NUMPY\x01"[..], "preamble"), (&b"\x93NUMPY\x07\x00\x10\x00"[..], "version 7")]
+        {
+            fs::write(&path, bytes).unwrap();
+            assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", what]);
+        }
     }
 
     #[test]
