@@ -179,7 +179,9 @@ impl AlignedBytes {
         let mut words = vec![0u32; b.len().div_ceil(4)];
         for (w, chunk) in words.iter_mut().zip(b.chunks(4)) {
             let mut le = [0u8; 4];
-            le[..chunk.len()].copy_from_slice(chunk);
+            for (d, s) in le.iter_mut().zip(chunk) {
+                *d = *s;
+            }
             *w = u32::from_ne_bytes(le);
         }
         AlignedBytes { words, len: b.len() }

@@ -1,6 +1,17 @@
 //! `lapwing`: the host tool. Parses arguments, calls the library, prints, and
 //! picks the exit status in one place: 0 success (or within budget), 1 budget
 //! violated, 2 any error.
+#![cfg_attr(
+    not(test),
+    deny(
+        clippy::unwrap_used,
+        clippy::expect_used,
+        clippy::panic,
+        clippy::unreachable,
+        clippy::todo,
+        clippy::indexing_slicing
+    )
+)]
 
 use anyhow::Context;
 use clap::{Parser, Subcommand, ValueEnum};
