@@ -95,8 +95,8 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
             eprintln!("demo: {msg}");
         }
     };
-    std::fs::create_dir_all(&opts.out).with_context(|| format!("cannot create {}", opts.out.display()))?;
     let scen = Scenario::load(&opts.demo_data.join("scenario.toml"))?;
+    std::fs::create_dir_all(&opts.out).with_context(|| format!("cannot create {}", opts.out.display()))?;
     let mut files = Vec::new();
     let write_set = |set: DataSet| -> Result<(PathBuf, usize)> {
         let g = scenario::generate(&scen, set).with_context(|| format!("generating the {} set", set.name()))?;

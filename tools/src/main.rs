@@ -836,6 +836,9 @@ fn simulate_cmd(a: &SimulateArgs) -> anyhow::Result<ExitCode> {
         anyhow::bail!("--set {}: unknown data set (accepted: train, calib, test, sample)", a.set);
     };
     output::check_destination(&a.output)?;
+    if let Some(p) = a.events.as_deref().filter(|p| p.as_os_str() != "-") {
+        output::check_destination(p)?;
+    }
     let scen = Scenario::load(&a.scenario)?;
     let g = scenario::generate(&scen, set).map_err(|e| anyhow::anyhow!("{}: {e:#}", a.scenario.display()))?;
     scenario::write(&g, &a.output)?;
