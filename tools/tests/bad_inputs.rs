@@ -333,17 +333,25 @@ fn bad_data_files() {
     let o = s(&out);
     let (m, b) = (fx.model.as_str(), fx.blob.as_str());
     let header = "s0,s1,s2,s3\n";
-    let cases: Vec<(&str, String, Vec<&str>)> = vec![
-        ("word.csv", format!("{header}1,2,3,4\n1,two,3,4\n"), vec!["word.csv", "line 3", "s1", "two"]),
-        ("blank.csv", format!("{header}1,2,3,4\n1,,3,4\n"), vec!["blank.csv", "line 3", "s1", "empty cell"]),
-        ("nan.csv", format!("{header}1,2,3,4\n1,2,NaN,4\n"), vec!["nan.csv", "line 3", "s2"]),
-        ("inf.csv", format!("{header}1,2,3,inf\n"), vec!["inf.csv", "line 2", "s3"]),
-        ("short.csv", format!("{header}1,2,3,4\n1,2,3\n"), vec!["short.csv", "line 3", "3 fields"]),
-        ("long.csv", format!("{header}1,2,3,4,5\n"), vec!["long.csv", "line 2", "5 fields"]),
-        ("header.csv", header.to_string(), vec!["header.csv", "no data rows"]),
-        ("five.csv", "a,b,c,d,e\n1,2,3,4,5\n".to_string(), vec!["five.csv", "5 feature columns", "4 inputs"]),
-        ("label.csv", format!("s0,s1,s2,s3,label\n1,2,3,4,7\n"), vec!["label.csv", "label"]),
-        ("bytes.csv", format!("{header}1,2,3,\u{fffd}\n").replace('\u{fffd}', "\u{ff}"), vec!["bytes.csv", "line 2"]),
+    let cases: Vec<(&str, Vec<u8>, Vec<&str>)> = vec![
+        ("word.csv", format!("{header}1,2,3,4\n1,two,3,4\n").into_bytes(), vec!["word.csv", "line 3", "s1", "two"]),
+        (
+            "blank.csv",
+            format!("{header}1,2,3,4\n1,,3,4\n").into_bytes(),
+            vec!["blank.csv", "line 3", "s1", "empty cell"],
+        ),
+        ("nan.csv", format!("{header}1,2,3,4\n1,2,NaN,4\n").into_bytes(), vec!["nan.csv", "line 3", "s2"]),
+        ("inf.csv", format!("{header}1,2,3,inf\n").into_bytes(), vec!["inf.csv", "line 2", "s3"]),
+        ("short.csv", format!("{header}1,2,3,4\n1,2,3\n").into_bytes(), vec!["short.csv", "line 3", "3 fields"]),
+        ("long.csv", format!("{header}1,2,3,4,5\n").into_bytes(), vec!["long.csv", "line 2", "5 fields"]),
+        ("header.csv", header.to_string().into_bytes(), vec!["header.csv", "no data rows"]),
+        (
+            "five.csv",
+            "a,b,c,d,e\n1,2,3,4,5\n".to_string().into_bytes(),
+            vec!["five.csv", "5 feature columns", "4 inputs"],
+        ),
+        ("label.csv", "s0,s1,s2,s3,label\n1,2,3,4,7\n".to_string().into_bytes(), vec!["label.csv", "label"]),
+        ("bytes.csv", [header.as_bytes(), b"1,2,3,\xff\n"].concat(), vec!["bytes.csv", "line 2"]),
     ];
     for (name, text, needles) in &cases {
         let p = fx.file(name, text);
