@@ -553,7 +553,43 @@ fn check_npy_preamble(path: &Path, file: &mut File, file_len: Option<u64>) -> Re
             bail!("{name}: the file is truncated: the header claims {header_len} bytes but the file has {len} in all");
         }
     }
+    let mut header = Vec::new();
+    file.by_ref()
+        .take(preamble + header_len)
+        .read_to_end(&mut header)
+        .with_context(|| format!("{name}: cannot read"))?;
+    file.seek(SeekFrom::Start(0)).with_context(|| format!("{name}: cannot read"))?;
+    let depth = npy_header_depth(header.get(usize::try_from(preamble).unwrap_or(0)..).unwrap_or(&[]));
+    if depth > MAX_NPY_HEADER_DEPTH {
+        bail!(
+            "{name}: not a valid .npy file: the header nests brackets {depth} deep (a NumPy header is one flat \
+             dictionary: descr, fortran_order, shape)"
+        );
+    }
     Ok(())
+}
+
+/// Deepest bracket nesting a `.npy` header may have: the dictionary, a
+/// structured dtype's list and tuple, a shape tuple.
+pub(crate) const MAX_NPY_HEADER_DEPTH: usize = 4;
+
+/// Deepest nesting of `(`, `[` and `{` in a `.npy` header. `npyz`'s header
+/// parser takes time exponential in the nesting depth (16 nested braces in a
+/// 118-byte header took over a minute; found by fuzzing), so headers deeper
+/// than [`MAX_NPY_HEADER_DEPTH`] are refused before it runs.
+pub(crate) fn npy_header_depth(header: &[u8]) -> usize {
+    let (mut depth, mut deepest) = (0usize, 0usize);
+    for b in header {
+        match b {
+            b'(' | b'[' | b'{' => {
+                depth += 1;
+                deepest = deepest.max(depth);
+            }
+            b')' | b']' | b'}' => depth = depth.saturating_sub(1),
+            _ => {}
+        }
+    }
+    deepest
 }
 
 fn npy_rows(
@@ -951,6 +987,33 @@ mod tests {
         assert_has(&err("<f4", false, &[3, 2], &[0; 20]), &["data.npy", "truncated", "24 bytes", "20"]);
         let (_dir, path) = file("data.npy", "not numpy at all");
         assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "not a valid .npy"]);
+    }
+
+    /// Found by the `data_npy` fuzz target: a 118-byte header with 31 nested
+    /// braces kept `npyz`'s header parser busy for minutes (its time grows
+    /// exponentially with the nesting). Refused from the nesting depth now.
+    #[test]
+    fn npy_deeply_nested_header_is_refused_quickly() {
+        let bytes: [u8; 164] = [
+            147, 78, 85, 77, 80, 89, 1, 0, 118, 0, 123, 39, 100, 101, 115, 99, 46, 110, 112, 121, 114, 100, 101, 114,
+            39, 58, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123,
+            123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 32, 70, 97, 108, 115, 101, 44, 32, 39, 97, 110, 95,
+            111, 114, 100, 101, 92, 114, 39, 58, 32, 70, 97, 108, 115, 9, 0, 101, 44, 32, 39, 115, 104, 97, 58, 32, 39,
+            60, 7, 48, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7,
+            7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 102, 56, 39, 44, 32, 32, 32, 0, 0,
+            192, 13, 10,
+        ];
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.npy");
+        fs::write(&path, bytes).unwrap();
+        let t = std::time::Instant::now();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "nests brackets 32 deep"]);
+        assert!(t.elapsed().as_secs() < 5, "took {:?}", t.elapsed());
+        // A valid header's depth is 2 (the dictionary and the shape tuple).
+        let ok = npy_bytes("<f4", false, &[1, 2], &le_f32(&[1.0, 2.0]));
+        assert_eq!(npy_header_depth(&ok[10..]), 2);
+        assert_eq!(npy_header_depth(b"{[({)]}}"), 4);
     }
 
     /// Found by the `data_npy` fuzz target: a version-2 preamble claiming a

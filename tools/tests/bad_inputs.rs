@@ -311,6 +311,16 @@ fn float_models_with_bad_values_or_shapes() {
     let member = npy("<f4", "(1048576, 1048576)", &[0; 16]);
     let npz = fx.file("huge.npz", zip_one("lstm.weight_ih_l0.npy", &member));
     refuses(&["run", &npz, "--data", d, "-o", &o], &out, &["huge.npz", "1048576", "2^26"]);
+    // An npz member whose header nests 21 brackets (npyz's parser would take
+    // minutes; refused from the depth).
+    let deep =
+        format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {}1, 1{}, }}", "(".repeat(20), ")".repeat(20));
+    let mut member = b"\x93NUMPY\x01\x00".to_vec();
+    member.extend_from_slice(&(deep.len() as u16).to_le_bytes());
+    member.extend_from_slice(deep.as_bytes());
+    member.extend_from_slice(&[0; 4]);
+    let npz = fx.file("deep.npz", zip_one("lstm.weight_ih_l0.npy", &member));
+    refuses(&["quantize", &npz, "--calib", d, "-o", &o], &out, &["deep.npz", "nests brackets 21 deep"]);
     // A header length of 2^60 bytes.
     let mut st = (1u64 << 60).to_le_bytes().to_vec();
     st.extend_from_slice(b"{}");
@@ -381,6 +391,7 @@ fn bad_data_files() {
         ("rows.npy", npy("<f4", "(1099511627776, 4)", &[0; 16]), "truncated"),
         ("wide.npy", npy("<f4", "(1, 3)", &[0; 12]), "4 inputs"),
         ("hdr.npy", b"\x93NUMPY\x02\x00\xff\xff\xff\x7f{".to_vec(), "header claims"),
+        ("deep.npy", npy("<f4", &format!("{}4,{}", "(".repeat(20), ")".repeat(20)), &[0; 16]), "nests brackets"),
     ] {
         let p = fx.file(name, bytes);
         refuses(&["run", b, "--data", &p, "-o", &o], &out, &[name, why]);
