@@ -92,7 +92,8 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
     let t0 = Instant::now();
     let say = |msg: &str| {
         if opts.verbose {
-            eprintln!("demo: {msg}");
+            // Never panics on a closed stderr, unlike `eprintln!`.
+            let _ = std::io::Write::write_all(&mut std::io::stderr(), format!("demo: {msg}\n").as_bytes());
         }
     };
     let scen = Scenario::load(&opts.demo_data.join("scenario.toml"))?;

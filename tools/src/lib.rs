@@ -31,7 +31,8 @@
 //! computes.
 //!
 //! No panic on user input: outside tests, clippy denies `unwrap`, `expect`,
-//! `panic!`, `unreachable!` and `todo!`; files, options and data are
+//! `panic!`, `unreachable!`, `todo!` and the printing macros (which panic on
+//! a closed pipe); files, options and data are
 //! checked and refused with an error naming the file and the problem
 //! (`tools/tests/bad_inputs.rs`, the fuzz targets in `fuzz/`). The modules
 //! that read files also deny unchecked indexing and slicing (`get`,
@@ -39,7 +40,15 @@
 //! they build themselves from checked shapes.
 #![cfg_attr(
     not(test),
-    deny(clippy::unwrap_used, clippy::expect_used, clippy::panic, clippy::unreachable, clippy::todo)
+    deny(
+        clippy::unwrap_used,
+        clippy::expect_used,
+        clippy::panic,
+        clippy::unreachable,
+        clippy::todo,
+        clippy::print_stdout,
+        clippy::print_stderr
+    )
 )]
 
 #[cfg_attr(not(test), deny(clippy::indexing_slicing))]

@@ -9,7 +9,9 @@
         clippy::panic,
         clippy::unreachable,
         clippy::todo,
-        clippy::indexing_slicing
+        clippy::indexing_slicing,
+        clippy::print_stdout,
+        clippy::print_stderr
     )
 )]
 
@@ -501,6 +503,13 @@ fn emit(text: &str) {
     let _ = out.write_all(text.as_bytes()).and_then(|()| out.flush());
 }
 
+/// Writes to standard error; a closed stderr (`lapwing ... 2>&1 | head`)
+/// loses the text instead of panicking as `eprintln!` would.
+fn emit_err(text: &str) {
+    use std::io::Write;
+    let _ = std::io::stderr().lock().write_all(text.as_bytes());
+}
+
 macro_rules! out {
     ($($arg:tt)*) => { emit(&format!($($arg)*)) };
 }
@@ -514,7 +523,7 @@ fn main() -> ExitCode {
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("lapwing: error: {e:#}");
+            emit_err(&format!("lapwing: error: {e:#}\n"));
             ExitCode::from(2)
         }
     }
@@ -655,7 +664,7 @@ fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
         (false, false) => RunValues::Real,
     };
     let n = pipeline::run_file(&model, &a.data, &a.output, values, true)?;
-    eprintln!("wrote {} rows to {}", n, a.output.display());
+    emit_err(&format!("wrote {} rows to {}\n", n, a.output.display()));
     Ok(ExitCode::SUCCESS)
 }
 

@@ -494,3 +494,30 @@ fn outputs_in_missing_directories_and_existing_outputs_kept() {
     refuses(&["sweep", m, "--calib", d, "--data", &bad, "--json", &s(&k_json)], &k_json, &["bad.csv"]);
     refuses(&["detect", &fx.det_blob, "--data", &bad, "--json", &s(&k_json)], &k_json, &["bad.csv"]);
 }
+
+/// Runs `lapwing` with standard output and error going to pipes whose read
+/// ends are closed at once (`lapwing ... 2>&1 | head -0`); returns the exit
+/// status code.
+fn with_closed_pipes(args: &[&str]) -> Option<i32> {
+    use std::process::{Command, Stdio};
+    let mut child = Command::new(env!("CARGO_BIN_EXE_lapwing"))
+        .args(args)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    drop(child.stderr.take());
+    child.wait().unwrap().code()
+}
+
+#[test]
+fn closed_pipes_do_not_panic() {
+    let fx = Fx::new();
+    let o = s(&fx.path("out.csv"));
+    // An error message to a closed stderr: still exit status 2 (a panic is 101).
+    assert_eq!(with_closed_pipes(&["inspect", "absent.lwq"]), Some(2));
+    // Success with progress on stderr and a table on stdout, both closed.
+    assert_eq!(with_closed_pipes(&["run", &fx.blob, "--data", &fx.data, "-o", &o]), Some(0));
+    assert_eq!(with_closed_pipes(&["inspect", &fx.blob]), Some(0));
+}
