@@ -179,7 +179,9 @@ impl AlignedBytes {
         let mut words = vec![0u32; b.len().div_ceil(4)];
         for (w, chunk) in words.iter_mut().zip(b.chunks(4)) {
             let mut le = [0u8; 4];
-            le[..chunk.len()].copy_from_slice(chunk);
+            for (d, s) in le.iter_mut().zip(chunk) {
+                *d = *s;
+            }
             *w = u32::from_ne_bytes(le);
         }
         AlignedBytes { words, len: b.len() }
@@ -197,6 +199,10 @@ fn bytemuck_bytes(w: &[u32]) -> &[u8] {
     bytemuck::cast_slice(w)
 }
 
+/// Largest blob file [`LoadedBlob::read`] loads (64 MiB, far beyond any
+/// microcontroller's flash): a larger file is refused before it is read.
+pub const MAX_BLOB_FILE_BYTES: u64 = 64 << 20;
+
 /// A blob file loaded into aligned memory.
 #[derive(Clone, Debug)]
 pub struct LoadedBlob {
@@ -209,9 +215,17 @@ impl LoadedBlob {
     /// Reads a `.lwq` file and validates it with the core's parser.
     ///
     /// # Errors
-    /// The file cannot be read, or the parser refuses it (the message names
-    /// the file and the check that failed).
+    /// The file cannot be read, is larger than [`MAX_BLOB_FILE_BYTES`], or
+    /// the parser refuses it (the message names the file and the check that
+    /// failed).
     pub fn read(path: &Path) -> Result<Self> {
+        let len = std::fs::metadata(path).with_context(|| format!("{}: cannot read", path.display()))?.len();
+        if len > MAX_BLOB_FILE_BYTES {
+            bail!(
+                "{}: not a valid blob: the file has {len} bytes, more than the {MAX_BLOB_FILE_BYTES} a blob may have",
+                path.display()
+            );
+        }
         let raw = std::fs::read(path).with_context(|| format!("{}: cannot read", path.display()))?;
         let me = LoadedBlob { path: path.to_path_buf(), data: AlignedBytes::from_bytes(&raw) };
         me.parse()?;

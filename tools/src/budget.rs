@@ -151,8 +151,20 @@ impl Budget {
     ///
     /// # Errors
     /// A missing or unreadable file (the message names the path and the
-    /// reason), or any error of [`Budget::from_toml_str`], naming the path.
+    /// reason), a file over 1 MiB, or any error of
+    /// [`Budget::from_toml_str`], naming the path.
     pub fn load(path: &Path) -> Result<Budget> {
+        // A budget is a few lines: refuse a huge file before reading it.
+        const MAX_BYTES: u64 = 1 << 20;
+        let len = std::fs::metadata(path)
+            .map_err(|e| anyhow!("{}: cannot read the error budget: {e}", path.display()))?
+            .len();
+        if len > MAX_BYTES {
+            bail!(
+                "{}: the error budget has {len} bytes, more than the {MAX_BYTES} a budget file may have",
+                path.display()
+            );
+        }
         let text = std::fs::read_to_string(path)
             .map_err(|e| anyhow!("{}: cannot read the error budget: {e}", path.display()))?;
         Budget::from_toml_str(&text, &path.display().to_string())

@@ -186,8 +186,8 @@ impl<'m> Calibrator<'m> {
     /// Wrong feature count or a non-finite value (named by row and feature).
     pub fn push(&mut self, x: &[f32]) -> Result<()> {
         let t = self.steps;
-        if let Some(i) = x.iter().position(|v| !v.is_finite()) {
-            bail!("calibration row {t}, feature {i} is {} (data must be finite)", x[i]);
+        if let Some((i, v)) = x.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            bail!("calibration row {t}, feature {i} is {v} (data must be finite)");
         }
         let mut probe = StatsProbe { layers: &mut self.layers };
         self.model

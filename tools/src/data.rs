@@ -32,7 +32,7 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use std::cell::Cell;
 use std::fmt::Write as _;
 use std::fs::File;
-use std::io::{self, BufReader, Read};
+use std::io::{self, BufReader, Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::rc::Rc;
 
@@ -515,13 +515,91 @@ impl NpyShape {
     }
 }
 
+/// Longest `.npy` header accepted, in bytes (numpy writes well under 1 KiB
+/// for a 2-D array and refuses headers over 10,000 bytes by default).
+const MAX_NPY_HEADER_BYTES: u64 = 1 << 16;
+
+/// Checks the `.npy` preamble (magic, version, header length) before `npyz`
+/// reads the header, so a file claiming a header of gigabytes is refused
+/// without allocating it; leaves `file` at its start.
+fn check_npy_preamble(path: &Path, file: &mut File, file_len: Option<u64>) -> Result<()> {
+    let name = path.display();
+    let mut pre = Vec::with_capacity(12);
+    file.by_ref().take(12).read_to_end(&mut pre).with_context(|| format!("{name}: cannot read"))?;
+    file.seek(SeekFrom::Start(0)).with_context(|| format!("{name}: cannot read"))?;
+    if pre.is_empty() {
+        bail!("{name}: not a valid .npy file: the file is empty");
+    }
+    if !pre.starts_with(b"\x93NUMPY") {
+        bail!("{name}: not a valid .npy file: it does not start with the .npy magic \\x93NUMPY");
+    }
+    let field = |range: std::ops::Range<usize>| {
+        pre.get(range).map(|b| b.iter().rev().fold(0u64, |a, &x| a << 8 | u64::from(x)))
+    };
+    let (header_len, preamble) = match pre.get(6).copied() {
+        Some(1) => (field(8..10), 10u64),
+        Some(2 | 3) => (field(8..12), 12u64),
+        Some(v) => bail!("{name}: not a valid .npy file: format version {v} is not supported (1, 2 or 3)"),
+        None => (None, 0),
+    };
+    let Some(header_len) = header_len else {
+        bail!("{name}: not a valid .npy file: the file is truncated inside the preamble ({} bytes)", pre.len());
+    };
+    if header_len > MAX_NPY_HEADER_BYTES {
+        bail!("{name}: not a valid .npy file: the header claims {header_len} bytes (at most {MAX_NPY_HEADER_BYTES})");
+    }
+    if let Some(len) = file_len {
+        if preamble + header_len > len {
+            bail!("{name}: the file is truncated: the header claims {header_len} bytes but the file has {len} in all");
+        }
+    }
+    let mut header = Vec::new();
+    file.by_ref()
+        .take(preamble + header_len)
+        .read_to_end(&mut header)
+        .with_context(|| format!("{name}: cannot read"))?;
+    file.seek(SeekFrom::Start(0)).with_context(|| format!("{name}: cannot read"))?;
+    let depth = npy_header_depth(header.get(usize::try_from(preamble).unwrap_or(0)..).unwrap_or(&[]));
+    if depth > MAX_NPY_HEADER_DEPTH {
+        bail!(
+            "{name}: not a valid .npy file: the header nests brackets {depth} deep (a NumPy header is one flat \
+             dictionary: descr, fortran_order, shape)"
+        );
+    }
+    Ok(())
+}
+
+/// Deepest bracket nesting a `.npy` header may have: the dictionary, a
+/// structured dtype's list and tuple, a shape tuple.
+pub(crate) const MAX_NPY_HEADER_DEPTH: usize = 4;
+
+/// Deepest nesting of `(`, `[` and `{` in a `.npy` header. `npyz`'s header
+/// parser takes time exponential in the nesting depth (16 nested braces in a
+/// 118-byte header took over a minute; found by fuzzing), so headers deeper
+/// than [`MAX_NPY_HEADER_DEPTH`] are refused before it runs.
+pub(crate) fn npy_header_depth(header: &[u8]) -> usize {
+    let (mut depth, mut deepest) = (0usize, 0usize);
+    for b in header {
+        match b {
+            b'(' | b'[' | b'{' => {
+                depth += 1;
+                deepest = deepest.max(depth);
+            }
+            b')' | b']' | b'}' => depth = depth.saturating_sub(1),
+            _ => {}
+        }
+    }
+    deepest
+}
+
 fn npy_rows(
     path: &Path,
     progress: bool,
     f: impl FnMut(usize, &[f32], Option<u8>) -> Result<()>,
 ) -> Result<Vec<String>> {
     let name = path.display();
-    let (file, file_len) = open(path)?;
+    let (mut file, file_len) = open(path)?;
+    check_npy_preamble(path, &mut file, file_len)?;
     let consumed = Rc::new(Cell::new(0u64));
     let reader = CountingReader { inner: BufReader::new(file), count: Rc::clone(&consumed) };
     let npy = npyz::NpyFile::new(reader).with_context(|| format!("{name}: not a valid .npy file"))?;
@@ -909,6 +987,60 @@ mod tests {
         assert_has(&err("<f4", false, &[3, 2], &[0; 20]), &["data.npy", "truncated", "24 bytes", "20"]);
         let (_dir, path) = file("data.npy", "not numpy at all");
         assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "not a valid .npy"]);
+    }
+
+    /// Found by the `data_npy` fuzz target: a 118-byte header with 31 nested
+    /// braces kept `npyz`'s header parser busy for minutes (its time grows
+    /// exponentially with the nesting). Refused from the nesting depth now.
+    #[test]
+    fn npy_deeply_nested_header_is_refused_quickly() {
+        let bytes: [u8; 164] = [
+            147, 78, 85, 77, 80, 89, 1, 0, 118, 0, 123, 39, 100, 101, 115, 99, 46, 110, 112, 121, 114, 100, 101, 114,
+            39, 58, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123,
+            123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 123, 32, 70, 97, 108, 115, 101, 44, 32, 39, 97, 110, 95,
+            111, 114, 100, 101, 92, 114, 39, 58, 32, 70, 97, 108, 115, 9, 0, 101, 44, 32, 39, 115, 104, 97, 58, 32, 39,
+            60, 7, 48, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7,
+            7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 7, 102, 56, 39, 44, 32, 32, 32, 0, 0,
+            192, 13, 10,
+        ];
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.npy");
+        fs::write(&path, bytes).unwrap();
+        let t = std::time::Instant::now();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "nests brackets 32 deep"]);
+        assert!(t.elapsed().as_secs() < 5, "took {:?}", t.elapsed());
+        // A valid header's depth is 2 (the dictionary and the shape tuple).
+        let ok = npy_bytes("<f4", false, &[1, 2], &le_f32(&[1.0, 2.0]));
+        assert_eq!(npy_header_depth(&ok[10..]), 2);
+        assert_eq!(npy_header_depth(b"{[({)]}}"), 4);
+    }
+
+    /// Found by the `data_npy` fuzz target: a version-2 preamble claiming a
+    /// header of 2.4 GB made `npyz` allocate it before reading. The preamble
+    /// is now checked first, against a limit and the file's length.
+    #[test]
+    fn npy_huge_header_length_is_refused_before_allocating() {
+        let bytes: [u8; 30] = [
+            147, 78, 85, 77, 80, 89, 2, 0, 229, 118, 2, 147, 78, 85, 77, 123, 39, 100, 101, 39, 115, 60, 114, 123, 39,
+            100, 101, 39, 115, 60,
+        ];
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("data.npy");
+        fs::write(&path, bytes).unwrap();
+        let msg = format!("{:#}", read(&path, false).unwrap_err());
+        assert_has(&msg, &["data.npy", "header claims 2466412261 bytes"]);
+        // Within the limit but longer than the file: truncated.
+        let mut v1 = npy_bytes("<f4", false, &[1, 1], &le_f32(&[1.0]));
+        v1[8..10].copy_from_slice(&4000u16.to_le_bytes());
+        fs::write(&path, &v1).unwrap();
+        assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", "truncated", "4000 bytes"]);
+        for (bytes, what) in
+            [(&b""[..], "empty"), (&b"\x93NUMPY\x01"[..], "preamble"), (&b"\x93NUMPY\x07\x00\x10\x00"[..], "version 7")]
+        {
+            fs::write(&path, bytes).unwrap();
+            assert_has(&format!("{:#}", read(&path, false).unwrap_err()), &["data.npy", what]);
+        }
     }
 
     #[test]

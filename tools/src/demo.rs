@@ -97,11 +97,12 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
     let t0 = Instant::now();
     let say = |msg: &str| {
         if opts.verbose {
-            eprintln!("demo: {msg}");
+            // Never panics on a closed stderr, unlike `eprintln!`.
+            let _ = std::io::Write::write_all(&mut std::io::stderr(), format!("demo: {msg}\n").as_bytes());
         }
     };
-    std::fs::create_dir_all(&opts.out).with_context(|| format!("cannot create {}", opts.out.display()))?;
     let scen = Scenario::load(&opts.demo_data.join("scenario.toml"))?;
+    std::fs::create_dir_all(&opts.out).with_context(|| format!("cannot create {}", opts.out.display()))?;
     let mut files = Vec::new();
     let write_set = |set: DataSet| -> Result<(PathBuf, usize)> {
         let g = scenario::generate(&scen, set).with_context(|| format!("generating the {} set", set.name()))?;

@@ -88,11 +88,11 @@ pub fn to_safetensors_bytes(model: &FloatModelData, norm: Option<&Normalization>
                 n.std.len()
             );
         }
-        if let Some(i) = n.mean.iter().position(|m| !m.is_finite()) {
-            bail!("cannot export the normalization: norm.mean[{i}] = {} is not finite", n.mean[i]);
+        if let Some((i, m)) = n.mean.iter().enumerate().find(|(_, m)| !m.is_finite()) {
+            bail!("cannot export the normalization: norm.mean[{i}] = {m} is not finite");
         }
-        if let Some(i) = n.std.iter().position(|s| !(s.is_finite() && *s > 0.0)) {
-            bail!("cannot export the normalization: norm.std[{i}] = {} must be finite and positive", n.std[i]);
+        if let Some((i, s)) = n.std.iter().enumerate().find(|(_, s)| !(s.is_finite() && **s > 0.0)) {
+            bail!("cannot export the normalization: norm.std[{i}] = {s} must be finite and positive");
         }
         tensors.push(("norm.mean".to_string(), Tensor::new(vec![x], &n.mean)));
         tensors.push(("norm.std".to_string(), Tensor::new(vec![x], &n.std)));

@@ -77,15 +77,15 @@ impl FloatModelData {
     pub fn check_finite(&self) -> Result<()> {
         for (k, l) in self.layers.iter().enumerate() {
             for (name, t) in [("w_x", &l.w_x), ("w_h", &l.w_h), ("b", &l.b)] {
-                if let Some(i) = t.iter().position(|v| !v.is_finite()) {
-                    bail!("layers.{k}.{name}[{i}] is {} (weights must be finite)", t[i]);
+                if let Some((i, v)) = t.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+                    bail!("layers.{k}.{name}[{i}] is {v} (weights must be finite)");
                 }
             }
         }
         if let Some(h) = &self.head {
             for (name, t) in [("w", &h.w), ("b", &h.b)] {
-                if let Some(i) = t.iter().position(|v| !v.is_finite()) {
-                    bail!("head.{name}[{i}] is {} (weights must be finite)", t[i]);
+                if let Some((i, v)) = t.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+                    bail!("head.{name}[{i}] is {v} (weights must be finite)");
                 }
             }
         }
@@ -103,8 +103,8 @@ impl FloatModelData {
         if mean.len() != l0.input || std.len() != l0.input {
             bail!("normalization has {} means and {} stds, layer 0 takes {} features", mean.len(), std.len(), l0.input);
         }
-        if let Some(i) = std.iter().position(|s| !(s.is_finite() && *s > 0.0)) {
-            bail!("norm.std[{i}] = {} must be finite and positive", std[i]);
+        if let Some((i, s)) = std.iter().enumerate().find(|(_, s)| !(s.is_finite() && **s > 0.0)) {
+            bail!("norm.std[{i}] = {s} must be finite and positive");
         }
         for (row, b) in l0.w_x.chunks_exact_mut(l0.input).zip(l0.b.iter_mut()) {
             let mut shift = 0.0f64;

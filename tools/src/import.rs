@@ -551,6 +551,10 @@ fn precheck_npy_shape(name: &str, bytes: &[u8]) -> Result<()> {
         _ => (12, bytes.get(8..12).and_then(|b| b.try_into().ok()).map(|b: [u8; 4]| u32::from_le_bytes(b) as usize)),
     };
     let Some(text) = len.and_then(|l| bytes.get(start..start.saturating_add(l))) else { return Ok(()) };
+    let depth = crate::data::npy_header_depth(text);
+    if depth > crate::data::MAX_NPY_HEADER_DEPTH {
+        bail!("tensor `{name}`: not a valid .npy array: the header nests brackets {depth} deep");
+    }
     let text = String::from_utf8_lossy(text);
     let Some(at) = text.find("'shape'").or_else(|| text.find("\"shape\"")) else { return Ok(()) };
     let rest = text.get(at..).unwrap_or("");

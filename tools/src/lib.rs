@@ -30,23 +30,56 @@
 //! The quantized path always runs the core's device code
 //! ([`lapwing::quant::QModel::step`]): what the host reports is what the chip
 //! computes.
+//!
+//! No panic on user input: outside tests, clippy denies `unwrap`, `expect`,
+//! `panic!`, `unreachable!`, `todo!` and the printing macros (which panic on
+//! a closed pipe); files, options and data are
+//! checked and refused with an error naming the file and the problem
+//! (`tools/tests/bad_inputs.rs`, the fuzz targets in `fuzz/`). The modules
+//! that read files also deny unchecked indexing and slicing (`get`,
+//! iterators, `chunks_exact`); the numeric modules index buffers whose sizes
+//! they build themselves from checked shapes.
+#![cfg_attr(
+    not(test),
+    deny(
+        clippy::unwrap_used,
+        clippy::expect_used,
+        clippy::panic,
+        clippy::unreachable,
+        clippy::todo,
+        clippy::print_stdout,
+        clippy::print_stderr
+    )
+)]
 
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod blob;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod budget;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod calibrate;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod codegen;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod data;
 pub mod demo;
 pub mod detector;
 pub mod example;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod export;
 pub mod fit;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod float_model;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod import;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod inspect;
 pub mod metrics;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod onnx;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod output;
+#[cfg_attr(not(test), deny(clippy::indexing_slicing))]
 pub mod pipeline;
 pub mod plot;
 pub mod quantize;

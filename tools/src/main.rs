@@ -1,6 +1,19 @@
 //! `lapwing`: the host tool. Parses arguments, calls the library, prints, and
 //! picks the exit status in one place: 0 success (or within budget), 1 budget
 //! violated, 2 any error.
+#![cfg_attr(
+    not(test),
+    deny(
+        clippy::unwrap_used,
+        clippy::expect_used,
+        clippy::panic,
+        clippy::unreachable,
+        clippy::todo,
+        clippy::indexing_slicing,
+        clippy::print_stdout,
+        clippy::print_stderr
+    )
+)]
 
 use anyhow::Context;
 use clap::{Parser, Subcommand, ValueEnum};
@@ -503,6 +516,13 @@ fn emit(text: &str) {
     let _ = out.write_all(text.as_bytes()).and_then(|()| out.flush());
 }
 
+/// Writes to standard error; a closed stderr (`lapwing ... 2>&1 | head`)
+/// loses the text instead of panicking as `eprintln!` would.
+fn emit_err(text: &str) {
+    use std::io::Write;
+    let _ = std::io::stderr().lock().write_all(text.as_bytes());
+}
+
 macro_rules! out {
     ($($arg:tt)*) => { emit(&format!($($arg)*)) };
 }
@@ -516,7 +536,7 @@ fn main() -> ExitCode {
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("lapwing: error: {e:#}");
+            emit_err(&format!("lapwing: error: {e:#}\n"));
             ExitCode::from(2)
         }
     }
@@ -664,7 +684,7 @@ fn run_cmd(a: &RunArgs) -> anyhow::Result<ExitCode> {
         (false, false) => RunValues::Real,
     };
     let n = pipeline::run_file(&model, &a.data, &a.output, values, true)?;
-    eprintln!("wrote {} rows to {}", n, a.output.display());
+    emit_err(&format!("wrote {} rows to {}\n", n, a.output.display()));
     Ok(ExitCode::SUCCESS)
 }
 
@@ -860,6 +880,9 @@ fn simulate_cmd(a: &SimulateArgs) -> anyhow::Result<ExitCode> {
         anyhow::bail!("--set {}: unknown data set (accepted: train, calib, test, sample)", a.set);
     };
     output::check_destination(&a.output)?;
+    if let Some(p) = a.events.as_deref().filter(|p| p.as_os_str() != "-") {
+        output::check_destination(p)?;
+    }
     let scen = Scenario::load(&a.scenario)?;
     let g = scenario::generate(&scen, set).map_err(|e| anyhow::anyhow!("{}: {e:#}", a.scenario.display()))?;
     scenario::write(&g, &a.output)?;

@@ -105,46 +105,6 @@ fn shipped_example_runs_through_the_whole_pipeline() {
     }
 }
 
-/// Runs a command that must fail: exit status 2, one line on stderr that
-/// contains every `needles`, and `out` not created.
-fn refuses(args: &[&str], out: &Path, needles: &[&str]) {
-    let o = lapwing(args);
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
-    assert_eq!(err.trim_end().lines().count(), 1, "{args:?}: not one line: {err}");
-    for n in needles {
-        assert!(err.contains(n), "{args:?}: {err:?} does not mention {n:?}");
-    }
-    assert!(!out.exists(), "{args:?} left {} behind", out.display());
-}
-
-fn write_model(dir: &Path, name: &str, edit: impl FnOnce(&mut Vec<(String, Vec<usize>, Vec<f32>)>)) -> String {
-    // The shipped split-layout model, re-serialized with an edit.
-    let bytes = std::fs::read(root().join("examples/pipeline/lstm_x4_h16.safetensors")).unwrap();
-    let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
-    let mut tensors: Vec<(String, Vec<usize>, Vec<f32>)> = st
-        .tensors()
-        .into_iter()
-        .map(|(n, v)| {
-            let vals = v.data().chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().unwrap())).collect();
-            (n, v.shape().to_vec(), vals)
-        })
-        .collect();
-    tensors.sort_by(|a, b| a.0.cmp(&b.0));
-    edit(&mut tensors);
-    let raw: Vec<(String, Vec<usize>, Vec<u8>)> =
-        tensors.into_iter().map(|(n, s, v)| (n, s, v.iter().flat_map(|x| x.to_le_bytes()).collect())).collect();
-    let views: Vec<(String, safetensors::tensor::TensorView<'_>)> = raw
-        .iter()
-        .map(|(n, s, b)| {
-            (n.clone(), safetensors::tensor::TensorView::new(safetensors::Dtype::F32, s.clone(), b).unwrap())
-        })
-        .collect();
-    let p = dir.join(name);
-    safetensors::serialize_to_file(views, &None, &p).unwrap();
-    p.display().to_string()
-}
-
 #[test]
 fn bad_inputs_exit_2_with_one_line_and_no_output() {
     let dir = tempfile::tempdir().unwrap();
