@@ -9,7 +9,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 corpus=fuzz/corpus
-mkdir -p "$corpus"/{blob_step,import_safetensors,import_npz,data_csv,data_npy,config_toml}
+mkdir -p "$corpus"/{blob_step,import_safetensors,import_onnx,import_npz,data_csv,data_npy,config_toml}
 
 cargo build --release --locked -q -p lapwing-tools --bin lapwing
 lw=target/release/lapwing
@@ -22,6 +22,8 @@ trap 'rm -rf "$tmp"' EXIT
 head -n 301 "$tmp/sample.csv" >"$tmp/short.csv"
 "$lw" fit --train "$tmp/short.csv" -o "$tmp/tiny.safetensors" --hidden 4 --epochs 1 --window 16 --batch 2 >/dev/null
 cp "$tmp/tiny.safetensors" "$corpus/import_safetensors/tiny_lapwing_norm.safetensors"
+# ONNX: the reference models (accepted and refused) of the import tests.
+cp tests/data/onnx/*.onnx tests/data/onnx/refused/*.onnx "$corpus/import_onnx/"
 
 # Blobs: every scheme x cell x table from the tiny model, one with a detector.
 for scheme in w8a16 w8a8 w16a16; do

@@ -9,7 +9,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 secs=${LAPWING_FUZZ_SECONDS:-60}
-all=(blob_step import_safetensors import_npz data_csv data_npy config_toml)
+all=(blob_step import_safetensors import_onnx import_npz data_csv data_npy config_toml)
 targets=("$@")
 [ ${#targets[@]} -eq 0 ] && targets=("${all[@]}")
 
