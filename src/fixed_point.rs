@@ -260,13 +260,7 @@ pub(crate) fn requant_nonneg(acc: i32, mult: i32, shift: i32) -> i32 {
     let neg = acc >> 31; // -1 or 0
     if shift >= 0 {
         let q = ((acc as i64 * mult as i64 + ((1 << 30) + neg) as i64) >> 31) as i32;
-        if shift == 0 {
-            q
-        } else {
-            let y = q + (q >> 31);
-            let n = if shift > 32 { 31 } else { (shift - 1) as u32 };
-            ((y >> n) + 1) >> 1
-        }
+        round_shr_inner(q, shift as u32)
     } else {
         let n = (32 + shift) as u32 & 31; // r + 1, in 1..=31
                                           // 2^r - neg in 32 bits: r <= 30, so at most 2^30.
@@ -281,6 +275,30 @@ pub(crate) fn requant_nonneg(acc: i32, mult: i32, shift: i32) -> i32 {
         } else {
             i32::MAX
         }
+    }
+}
+
+/// [`mul_q31`] when `a >= 0` (a gate value, in `[0, 2^31)`): the same
+/// integer. As in [`requant_nonneg`], the sign of `b` stands for the sign
+/// of the product (`a == 0` gives 0 either way) and `a != i32::MIN`. The
+/// result is in `[-(2^31 - 1), 2^31 - 2]`, the range
+/// [`round_shr_inner`] needs.
+#[inline(always)]
+pub(crate) fn mul_q31_nonneg(a: i32, b: i32) -> i32 {
+    ((a as i64 * b as i64 + ((1 << 30) + (b >> 31)) as i64) >> 31) as i32
+}
+
+/// [`round_shr`] for `x` in `[-(2^31 - 1), 2^31 - 2]` and any `shift`
+/// (the proof is in [`requant_nonneg`]): `((y >> (s - 1)) + 1) >> 1` with
+/// `y = x - [x < 0]`, the shift clamped at 31.
+#[inline(always)]
+pub(crate) fn round_shr_inner(x: i32, shift: u32) -> i32 {
+    if shift == 0 {
+        x
+    } else {
+        let y = x + (x >> 31);
+        let n = if shift > 32 { 31 } else { shift - 1 };
+        ((y >> n) + 1) >> 1
     }
 }
 
@@ -456,6 +474,14 @@ mod tests {
         fn requant_nonneg_matches_apply(acc in any::<i32>(), mult in 0i32..=i32::MAX, shift in -31i32..=62) {
             let rq = Requant { mult, shift };
             prop_assert_eq!(requant_nonneg(acc, mult, shift), rq.apply(acc));
+        }
+
+        #[test]
+        fn mul_q31_nonneg_matches(a in prop_oneof![Just(0), Just(1), Just(i32::MAX), 0i32..=i32::MAX],
+                                  b in prop_oneof![Just(i32::MIN), Just(-1), Just(0), Just(i32::MAX), any::<i32>()],
+                                  s in 0u32..40) {
+            prop_assert_eq!(mul_q31_nonneg(a, b), mul_q31(a, b));
+            prop_assert_eq!(round_shr_inner(mul_q31_nonneg(a, b), s), round_shr(mul_q31(a, b), s));
         }
 
         #[test]

@@ -59,7 +59,7 @@
 //! in a `static`.
 
 use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
-use crate::fixed_point::{mul_q31, requant_nonneg, round_shr, sat_i16, shift_signed};
+use crate::fixed_point::{mul_q31_nonneg, requant_nonneg, round_shr_inner, sat_i16, shift_signed};
 use crate::float::{check_len, dim_mul};
 use crate::{stack_layers, Error, Probe, MAX_LAYERS};
 use bytemuck::Pod;
@@ -527,7 +527,7 @@ pub fn pre_shift_for(worst: i64) -> u8 {
 }
 
 /// Rounding right shift of an `i64`, half away from zero (as
-/// [`round_shr`]); `n` in `1..=62`. The reference for [`round_shr64_lo`].
+/// [`round_shr`](crate::fixed_point::round_shr)); `n` in `1..=62`. The reference for [`round_shr64_lo`].
 #[cfg(test)]
 fn round_shr64(x: i64, n: u32) -> i64 {
     // Branch-free, the same integers: floor((x + half - [x < 0]) / 2^n)
@@ -897,8 +897,11 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
         let gg = tanh(ctx.table, pre[2]);
         let go = sigmoid(ctx.table, pre[3]);
         let c_old = read_cell(c, j, ctx.cell);
-        let fc = mul_q31(gf, c_old);
-        let ig = round_shr(mul_q31(gi, gg), 31 - frac);
+        // Sigmoid outputs are in [1, 2^31) (activation::sigmoid), so the
+        // gate factors take the non-negative multiply; its results are in
+        // the range round_shr_inner needs.
+        let fc = mul_q31_nonneg(gf, c_old);
+        let ig = round_shr_inner(mul_q31_nonneg(gi, gg), 31 - frac);
         let mut c_new = fc.saturating_add(ig);
         if ctx.cell == CellWidth::C16 {
             c_new = sat_i16(c_new) as i32;
@@ -906,7 +909,7 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
         let t = tanh(ctx.table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
         // |o * tanh| < 1, but rounding can reach -1.0: clamp symmetrically
         // so h stays in (-1, 1) like the float value.
-        let h_new = round_shr(mul_q31(go, t), 31 - A::FRAC).clamp(-A::MAX, A::MAX);
+        let h_new = round_shr_inner(mul_q31_nonneg(go, t), 31 - A::FRAC).clamp(-A::MAX, A::MAX);
         probe.gates(ctx.k, j, &pre, &[gi, gf, gg, go]);
         probe.state(ctx.k, j, c_new, h_new);
         write_cell(c, j, ctx.cell, c_new);
