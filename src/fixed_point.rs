@@ -227,6 +227,38 @@ impl Requant {
     }
 }
 
+/// The exact 64-bit product of two `i32`, from four 16-bit partial
+/// products: `a = ah 2^16 + al`, `b = bh 2^16 + bl` with `al`, `bl` in
+/// `[0, 2^16)` and `ah`, `bh` in `[-2^15, 2^15)`, so `al bl < 2^32` fits
+/// `u32`, `|ah bl|` and `|al bh|` are below `2^31` and `|ah bh| <= 2^30`;
+/// the sum is then exact in `i64`.
+///
+/// Armv6-M has no 32x32->64 multiply, and LLVM calls the general 64x64
+/// routine (`__aeabi_lmul`, about 40 instructions with the call) for an
+/// `i64` product there; this form is about 25 inline. Cores with `smull`
+/// do it in one instruction, so [`mul_wide`] uses it only on Armv6-M.
+#[inline(always)]
+pub(crate) fn mul_wide_halves(a: i32, b: i32) -> i64 {
+    let (ah, al) = (a >> 16, a & 0xffff);
+    let (bh, bl) = (b >> 16, b & 0xffff);
+    let lo = (al as u32).wrapping_mul(bl as u32) as i64;
+    let mid = (ah * bl) as i64 + (al * bh) as i64;
+    (((ah * bh) as i64) << 32) + (mid << 16) + lo
+}
+
+/// `a as i64 * b as i64`. On Armv6-M (recognised as the Arm targets
+/// without 32-bit compare-and-swap, which stable Rust can test; Armv8-M
+/// Baseline has it and keeps the plain product) from
+/// [`mul_wide_halves`]; the same integer everywhere (tested).
+#[inline(always)]
+pub(crate) fn mul_wide(a: i32, b: i32) -> i64 {
+    if cfg!(all(target_arch = "arm", not(target_has_atomic = "32"))) {
+        mul_wide_halves(a, b)
+    } else {
+        a as i64 * b as i64
+    }
+}
+
 /// [`Requant::apply`] for a multiplier in `[0, 2^31)` and a shift in
 /// `[-31, 62]` (what [`crate::quant::RowScales`] validates): the same
 /// integer for every `acc`, in fewer instructions.
@@ -259,13 +291,13 @@ impl Requant {
 pub(crate) fn requant_nonneg(acc: i32, mult: i32, shift: i32) -> i32 {
     let neg = acc >> 31; // -1 or 0
     if shift >= 0 {
-        let q = ((acc as i64 * mult as i64 + ((1 << 30) + neg) as i64) >> 31) as i32;
+        let q = ((mul_wide(acc, mult) + ((1 << 30) + neg) as i64) >> 31) as i32;
         round_shr_inner(q, shift as u32)
     } else {
         let n = (32 + shift) as u32 & 31; // r + 1, in 1..=31
                                           // 2^r - neg in 32 bits: r <= 30, so at most 2^30.
         let half = ((1u32 << ((n - 1) & 31)) as i32 + neg) as i64;
-        let w = ((acc as i64 * mult as i64) << 1) + half;
+        let w = (mul_wide(acc, mult) << 1) + half;
         let (lo, hi) = (w as u32, (w >> 32) as i32);
         let v = ((lo >> n) | ((hi as u32) << (32 - n))) as i32;
         if hi >> n == v >> 31 {
@@ -285,7 +317,7 @@ pub(crate) fn requant_nonneg(acc: i32, mult: i32, shift: i32) -> i32 {
 /// [`round_shr_inner`] needs.
 #[inline(always)]
 pub(crate) fn mul_q31_nonneg(a: i32, b: i32) -> i32 {
-    ((a as i64 * b as i64 + ((1 << 30) + (b >> 31)) as i64) >> 31) as i32
+    ((mul_wide(a, b) + ((1 << 30) + (b >> 31)) as i64) >> 31) as i32
 }
 
 /// [`round_shr`] for `x` in `[-(2^31 - 1), 2^31 - 2]` and any `shift`
@@ -482,6 +514,15 @@ mod tests {
                                   s in 0u32..40) {
             prop_assert_eq!(mul_q31_nonneg(a, b), mul_q31(a, b));
             prop_assert_eq!(round_shr_inner(mul_q31_nonneg(a, b), s), round_shr(mul_q31(a, b), s));
+        }
+
+        #[test]
+        fn mul_wide_halves_is_exact(
+            a in prop_oneof![Just(i32::MIN), Just(i32::MAX), Just(-1), Just(0), Just(0xffff), Just(-0x10000), any::<i32>()],
+            b in prop_oneof![Just(i32::MIN), Just(i32::MAX), Just(-1), Just(0), Just(0xffff), Just(-0x10000), any::<i32>()],
+        ) {
+            prop_assert_eq!(mul_wide_halves(a, b), a as i64 * b as i64);
+            prop_assert_eq!(mul_wide(a, b), a as i64 * b as i64);
         }
 
         #[test]
