@@ -44,8 +44,6 @@
 //! assert!((t as f64 / 2f64.powi(31) - 0.761_594_2).abs() < 3e-5);
 //! ```
 
-use crate::fixed_point::round_shr;
-
 /// Fractional bits of a gate pre-activation (`i32`, LSB `2^-19`).
 pub const PRE_FRAC: u32 = 19;
 
@@ -80,31 +78,38 @@ impl ActTable {
         1 << self.log2_knots
     }
 
-    /// `sigmoid(-a)` in Q0.31 for `a` in `[0, DOMAIN)` (larger `a` clamps).
-    #[inline]
-    fn s_neg(&self, a: i32) -> i32 {
-        let a = if a < 0 {
-            0
-        } else if a >= DOMAIN {
-            DOMAIN - 1
-        } else {
-            a
-        };
-        let seg = (a >> PRE_FRAC) as usize;
-        let within = a & ((1 << PRE_FRAC) - 1);
+    /// `sigmoid(-a)` in Q0.31 for `a` in `[0, DOMAIN)`; the callers clamp
+    /// (outside that range the value is meaningless, never a panic).
+    ///
+    /// The same integers as the plain formulation (segment, knot, 14-bit
+    /// fraction, interpolation rounded half away from zero, segment scale),
+    /// with the arithmetic folded:
+    /// - the knot index `seg * (2^log2_knots + 1) + j` is
+    ///   `(a >> fb) + seg`, as `a >> fb = seg * 2^log2_knots + j`;
+    /// - the fraction `frac` in `[0, 2^fb)` becomes 14 bits as
+    ///   `(frac * 2^14 + 2^(fb-1)) >> fb`: for `fb <= 14` the added half is
+    ///   below one step of `frac * 2^14`, a multiple of `2^fb`, so it is the
+    ///   exact left shift; for `fb > 14` it is `(frac + 2^(fb-15)) >> (fb-14)`
+    ///   with numerator and divisor scaled by `2^14`. `fb = 19 - log2_knots`
+    ///   is at most 18 (`log2_knots >= 1`, asserted at compile time), so
+    ///   `frac * 2^14 < 2^32` fits `u32`;
+    /// - the rounding shift of `d = (y1 - y0) * f14` (`|d| < 2^30`) by 14
+    ///   is `(d + 2^13 - [d < 0]) >> 14`.
+    #[inline(always)]
+    fn s_neg(&self, a: u32) -> i32 {
         let fb = PRE_FRAC - self.log2_knots;
-        let j = (within >> fb) as usize;
-        let frac = within & ((1 << fb) - 1);
-        // frac < 2^fb: a left shift never saturates, a right shift rounds
-        // a non-negative value (the same integers as `shift_signed`).
-        let f14 = if fb <= 14 { frac << (14 - fb) } else { (frac + (1 << (fb - 15))) >> (fb - 14) };
-        let per_seg = (1usize << self.log2_knots) + 1;
-        let base = seg * per_seg + j;
-        let y0 = self.mant.get(base).copied().unwrap_or(0) as i32;
-        let y1 = self.mant.get(base + 1).copied().unwrap_or(0) as i32;
-        let y = y0 + round_shr((y1 - y0) * f14, 14);
-        let sh = self.shifts.get(seg).copied().unwrap_or(31) as u32;
+        let seg = (a >> PRE_FRAC) as usize;
+        let base = (a >> fb) as usize + seg;
+        let frac = a & ((1 << fb) - 1);
+        let f14 = ((frac << 14) + (1 << (fb - 1))) >> fb;
+        let (y0, y1) = match self.mant.get(base..base + 2) {
+            Some(&[y0, y1]) => (y0 as i32, y1 as i32),
+            _ => (0, 0),
+        };
+        let d = (y1 - y0) * f14 as i32;
+        let y = y0 + ((d + (1 << 13) + (d >> 31)) >> 14);
         // y < 2^16 and sh >= 16, so the shift stays below 2^31.
+        let sh = self.shifts.get(seg & (SEGMENTS - 1)).copied().unwrap_or(31) as u32;
         y << (31 - sh)
     }
 }
@@ -114,11 +119,15 @@ impl ActTable {
 /// Exactly `sigmoid(x) + sigmoid(-x) = 2^31` for every `x > i32::MIN`.
 #[inline]
 pub fn sigmoid(table: &ActTable, x: i32) -> i32 {
+    // |x| clamped to the table (|i32::MIN| = 2^31 clamps too).
+    let s = table.s_neg(x.unsigned_abs().min(DOMAIN as u32 - 1));
     if x >= 0 {
-        // s > 0 everywhere in the table, so this stays below 2^31.
-        (i32::MAX - table.s_neg(x)).saturating_add(1)
+        // s is in [1, 2^30] (every knot scales into that range and
+        // interpolation stays between knots: test `knots_in_range`), so
+        // 2^31 - s is in [2^30, 2^31 - 1] and needs no saturation.
+        (1u32 << 31).wrapping_sub(s as u32) as i32
     } else {
-        table.s_neg(x.saturating_neg())
+        s
     }
 }
 
@@ -127,11 +136,11 @@ pub fn sigmoid(table: &ActTable, x: i32) -> i32 {
 /// Odd by construction: `tanh(-x) = -tanh(x)` for every `x > i32::MIN`.
 #[inline]
 pub fn tanh(table: &ActTable, x: i32) -> i32 {
-    let a = x.saturating_abs();
-    let a2 = if a >= DOMAIN / 2 { DOMAIN - 1 } else { a * 2 };
-    // s_neg <= 2^30, so the difference is in [0, 2^30] and doubling fits.
+    // 2|x| clamped to the table: |x| >= DOMAIN/2 gives DOMAIN - 1.
+    let a2 = (x.unsigned_abs().min(DOMAIN as u32 / 2) << 1).min(DOMAIN as u32 - 1);
+    // s_neg is in [1, 2^30] (test `knots_in_range`), so the difference is
+    // in [0, 2^30 - 1] and doubling it stays below 2^31.
     let t = ((1 << 30) - table.s_neg(a2)) << 1;
-    let t = if t < 0 { i32::MAX } else { t };
     if x < 0 {
         -t
     } else {
@@ -240,6 +249,9 @@ const fn build_mantissas<const N: usize>(log2_knots: u32) -> [u16; N] {
     }
     out
 }
+
+// s_neg needs 1 <= log2_knots (its fraction arithmetic fits u32 then).
+const _: () = assert!(STANDARD_LOG2 >= 1 && COMPACT_LOG2 >= 1 && STANDARD_LOG2 < PRE_FRAC);
 
 const STANDARD_LOG2: u32 = 5;
 const STANDARD_LEN: usize = SEGMENTS * ((1 << STANDARD_LOG2) + 1);
@@ -421,6 +433,74 @@ mod tests {
             assert!(sigmoid(table, i32::MIN) > 0);
             assert_eq!(tanh(table, 0), 0);
             assert!(tanh(table, i32::MAX) > 0 && tanh(table, i32::MIN) < 0);
+        }
+    }
+
+    #[test]
+    fn knots_in_range() {
+        // What sigmoid and tanh rely on to skip saturation: every knot,
+        // scaled to Q0.31, is in [1, 2^30] (interpolated values lie between
+        // two knots, so they are too).
+        for table in [&STANDARD, &COMPACT] {
+            let per_seg = table.knots_per_unit() + 1;
+            assert_eq!(table.mant.len(), SEGMENTS * per_seg);
+            for (k, m) in table.mant.iter().enumerate() {
+                let v = (*m as u64) << (31 - table.shifts[k / per_seg] as u32);
+                assert!((1..=1 << 30).contains(&v), "knot {k}: {v}");
+            }
+        }
+    }
+
+    /// The lookup as first written (clamp, segment, knot, fraction,
+    /// interpolation, scale), kept to prove the folded one gives the same
+    /// integers.
+    fn s_neg_reference(t: &ActTable, a: i32) -> i32 {
+        use crate::fixed_point::round_shr;
+        let a = a.clamp(0, DOMAIN - 1);
+        let seg = (a >> PRE_FRAC) as usize;
+        let within = a & ((1 << PRE_FRAC) - 1);
+        let fb = PRE_FRAC - t.log2_knots;
+        let j = (within >> fb) as usize;
+        let frac = within & ((1 << fb) - 1);
+        let f14 = if fb <= 14 { frac << (14 - fb) } else { (frac + (1 << (fb - 15))) >> (fb - 14) };
+        let base = seg * ((1usize << t.log2_knots) + 1) + j;
+        let y0 = t.mant[base] as i32;
+        let y1 = t.mant[base + 1] as i32;
+        let y = y0 + round_shr((y1 - y0) * f14, 14);
+        y << (31 - t.shifts[seg] as u32)
+    }
+
+    fn sigmoid_reference(t: &ActTable, x: i32) -> i32 {
+        if x >= 0 {
+            (i32::MAX - s_neg_reference(t, x)).saturating_add(1)
+        } else {
+            s_neg_reference(t, x.saturating_neg())
+        }
+    }
+
+    fn tanh_reference(t: &ActTable, x: i32) -> i32 {
+        let a = x.saturating_abs();
+        let a2 = if a >= DOMAIN / 2 { DOMAIN - 1 } else { a * 2 };
+        let v = ((1 << 30) - s_neg_reference(t, a2)) << 1;
+        let v = if v < 0 { i32::MAX } else { v };
+        if x < 0 {
+            -v
+        } else {
+            v
+        }
+    }
+
+    #[test]
+    fn lookup_matches_reference_everywhere() {
+        // Every input of the table's domain and beyond (every 7th in a
+        // debug build), and the extremes.
+        let step = if cfg!(debug_assertions) { 7 } else { 1 };
+        let edges = [i32::MIN, i32::MIN + 1, -DOMAIN - 1, -DOMAIN, DOMAIN - 1, DOMAIN, i32::MAX - 1, i32::MAX];
+        for table in [&STANDARD, &COMPACT] {
+            for x in (-DOMAIN - 64..DOMAIN + 64).step_by(step).chain(edges) {
+                assert_eq!(sigmoid(table, x), sigmoid_reference(table, x), "sigmoid({x})");
+                assert_eq!(tanh(table, x), tanh_reference(table, x), "tanh({x})");
+            }
         }
     }
 

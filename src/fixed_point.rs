@@ -227,6 +227,113 @@ impl Requant {
     }
 }
 
+/// The exact 64-bit product of two `i32`, from four 16-bit partial
+/// products: `a = ah 2^16 + al`, `b = bh 2^16 + bl` with `al`, `bl` in
+/// `[0, 2^16)` and `ah`, `bh` in `[-2^15, 2^15)`, so `al bl < 2^32` fits
+/// `u32`, `|ah bl|` and `|al bh|` are below `2^31` and `|ah bh| <= 2^30`;
+/// the sum is then exact in `i64`.
+///
+/// Armv6-M has no 32x32->64 multiply, and LLVM calls the general 64x64
+/// routine (`__aeabi_lmul`, about 40 instructions with the call) for an
+/// `i64` product there; this form is about 25 inline. Cores with `smull`
+/// do it in one instruction, so [`mul_wide`] uses it only on Armv6-M.
+#[inline(always)]
+pub(crate) fn mul_wide_halves(a: i32, b: i32) -> i64 {
+    let (ah, al) = (a >> 16, a & 0xffff);
+    let (bh, bl) = (b >> 16, b & 0xffff);
+    let lo = (al as u32).wrapping_mul(bl as u32) as i64;
+    let mid = (ah * bl) as i64 + (al * bh) as i64;
+    (((ah * bh) as i64) << 32) + (mid << 16) + lo
+}
+
+/// `a as i64 * b as i64`. On Armv6-M (recognised as the Arm targets
+/// without 32-bit compare-and-swap, which stable Rust can test; Armv8-M
+/// Baseline has it and keeps the plain product) from
+/// [`mul_wide_halves`]; the same integer everywhere (tested).
+#[inline(always)]
+pub(crate) fn mul_wide(a: i32, b: i32) -> i64 {
+    if cfg!(all(target_arch = "arm", not(target_has_atomic = "32"))) {
+        mul_wide_halves(a, b)
+    } else {
+        a as i64 * b as i64
+    }
+}
+
+/// [`Requant::apply`] for a multiplier in `[0, 2^31)` and a shift in
+/// `[-31, 62]` (what [`crate::quant::RowScales`] validates): the same
+/// integer for every `acc`, in fewer instructions.
+///
+/// Why each step is exact (`p = acc * mult`, `neg = [acc < 0]`):
+/// - `mult >= 0`, so `p < 0` only when `acc < 0`; and when `mult == 0`,
+///   `p == 0` and subtracting `neg` below a positive rounding constant
+///   leaves the floor at 0. So the sign of `acc` replaces the sign of the
+///   64-bit product. `mult != i32::MIN`, so the saturating case of
+///   [`mul_q31`] never occurs.
+/// - Right shift (`shift >= 0`): `q = mul_q31(acc, mult)` lies in
+///   `[-(2^31 - 1), 2^31 - 2]` (`|p| <= 2^31 (2^31 - 1)`, and the largest
+///   positive product, `(2^31 - 1)^2`, rounds to `2^31 - 2`). Rounding `q`
+///   by `s >= 1` places, half away from zero, is
+///   `floor((q + 2^(s-1) - [q < 0]) / 2^s)`; with `y = q - [q < 0]` (no
+///   overflow: `q > i32::MIN`) that is `((y >> (s - 1)) + 1) >> 1` by
+///   nested floor division, and `+ 1` cannot overflow (`q <= 2^31 - 2`).
+///   For `s >= 32` the result is 0 ([`round_shr`] gives -1 only for
+///   `i32::MIN`, which `q` never is), and so is `((y >> 31) + 1) >> 1`, so
+///   the shift clamps at 31.
+/// - Left shift (`shift = -k`, `k` in `1..=31`, `r = 31 - k`): the one
+///   rounding of `p / 2^r` half away from zero is
+///   `floor((2p + 2^r - neg) / 2^(r+1))` for every `r >= 0` (for `r >= 1`
+///   the half in `-neg/2` does not move the floor of an integer over
+///   `2^r`; for `r = 0` it gives `p`), a 64-bit arithmetic shift by
+///   `r + 1` in `1..=31`, then the `i32` saturation. `|2p| < 2^63`.
+///
+/// Tested against [`Requant::apply`] over the whole input range.
+#[inline(always)]
+pub(crate) fn requant_nonneg(acc: i32, mult: i32, shift: i32) -> i32 {
+    let neg = acc >> 31; // -1 or 0
+    if shift >= 0 {
+        let q = ((mul_wide(acc, mult) + ((1 << 30) + neg) as i64) >> 31) as i32;
+        round_shr_inner(q, shift as u32)
+    } else {
+        let n = (32 + shift) as u32 & 31; // r + 1, in 1..=31
+                                          // 2^r - neg in 32 bits: r <= 30, so at most 2^30.
+        let half = ((1u32 << ((n - 1) & 31)) as i32 + neg) as i64;
+        let w = (mul_wide(acc, mult) << 1) + half;
+        let (lo, hi) = (w as u32, (w >> 32) as i32);
+        let v = ((lo >> n) | ((hi as u32) << (32 - n))) as i32;
+        if hi >> n == v >> 31 {
+            v
+        } else if hi < 0 {
+            i32::MIN
+        } else {
+            i32::MAX
+        }
+    }
+}
+
+/// [`mul_q31`] when `a >= 0` (a gate value, in `[0, 2^31)`): the same
+/// integer. As in [`requant_nonneg`], the sign of `b` stands for the sign
+/// of the product (`a == 0` gives 0 either way) and `a != i32::MIN`. The
+/// result is in `[-(2^31 - 1), 2^31 - 2]`, the range
+/// [`round_shr_inner`] needs.
+#[inline(always)]
+pub(crate) fn mul_q31_nonneg(a: i32, b: i32) -> i32 {
+    ((mul_wide(a, b) + ((1 << 30) + (b >> 31)) as i64) >> 31) as i32
+}
+
+/// [`round_shr`] for `x` in `[-(2^31 - 1), 2^31 - 2]` and any `shift`
+/// (the proof is in [`requant_nonneg`]): `((y >> (s - 1)) + 1) >> 1` with
+/// `y = x - [x < 0]`, the shift clamped at 31.
+#[inline(always)]
+pub(crate) fn round_shr_inner(x: i32, shift: u32) -> i32 {
+    if shift == 0 {
+        x
+    } else {
+        let y = x + (x >> 31);
+        let n = if shift > 32 { 31 } else { shift - 1 };
+        ((y >> n) + 1) >> 1
+    }
+}
+
 /// Converts a real value to the nearest integer of a fixed-point format with
 /// `frac` fractional bits, ties away from zero, saturating to `i32` (host side).
 pub fn to_fixed_i32(x: f64, frac: i32) -> i32 {
@@ -390,6 +497,42 @@ mod tests {
             let got = rq.apply(acc) as f64;
             let clamped = exact.clamp(i32::MIN as f64, i32::MAX as f64);
             prop_assert!((got - clamped).abs() <= 1.0, "acc {} scale {} got {} exact {}", acc, scale, got, exact);
+        }
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(8192))]
+        #[test]
+        fn requant_nonneg_matches_apply(acc in any::<i32>(), mult in 0i32..=i32::MAX, shift in -31i32..=62) {
+            let rq = Requant { mult, shift };
+            prop_assert_eq!(requant_nonneg(acc, mult, shift), rq.apply(acc));
+        }
+
+        #[test]
+        fn mul_q31_nonneg_matches(a in prop_oneof![Just(0), Just(1), Just(i32::MAX), 0i32..=i32::MAX],
+                                  b in prop_oneof![Just(i32::MIN), Just(-1), Just(0), Just(i32::MAX), any::<i32>()],
+                                  s in 0u32..40) {
+            prop_assert_eq!(mul_q31_nonneg(a, b), mul_q31(a, b));
+            prop_assert_eq!(round_shr_inner(mul_q31_nonneg(a, b), s), round_shr(mul_q31(a, b), s));
+        }
+
+        #[test]
+        fn mul_wide_halves_is_exact(
+            a in prop_oneof![Just(i32::MIN), Just(i32::MAX), Just(-1), Just(0), Just(0xffff), Just(-0x10000), any::<i32>()],
+            b in prop_oneof![Just(i32::MIN), Just(i32::MAX), Just(-1), Just(0), Just(0xffff), Just(-0x10000), any::<i32>()],
+        ) {
+            prop_assert_eq!(mul_wide_halves(a, b), a as i64 * b as i64);
+            prop_assert_eq!(mul_wide(a, b), a as i64 * b as i64);
+        }
+
+        #[test]
+        fn requant_nonneg_matches_apply_at_edges(
+            acc in prop_oneof![Just(i32::MIN), Just(i32::MIN + 1), Just(-1), Just(0), Just(1), Just(i32::MAX), any::<i32>(), -(1i32 << 16)..(1 << 16)],
+            // Multipliers with many trailing zeros make rounding ties common.
+            mult in prop_oneof![Just(0), Just(1), Just(1 << 30), Just(i32::MAX), 0i32..=i32::MAX, (0i32..64).prop_map(|m| m << 25)],
+            shift in prop_oneof![Just(-31), Just(-30), Just(-1), Just(0), Just(1), Just(31), Just(32), Just(33), Just(62), -31i32..=62],
+        ) {
+            prop_assert_eq!(requant_nonneg(acc, mult, shift), Requant { mult, shift }.apply(acc));
         }
     }
 }

@@ -59,7 +59,7 @@
 //! in a `static`.
 
 use crate::activation::{sigmoid, tanh, ActTable, TableKind, PRE_FRAC};
-use crate::fixed_point::{mul_q31, round_shr, sat_i16, shift_signed, Requant};
+use crate::fixed_point::{mul_q31_nonneg, requant_nonneg, round_shr_inner, sat_i16, shift_signed};
 use crate::float::{check_len, dim_mul};
 use crate::{stack_layers, Error, Probe, MAX_LAYERS};
 use bytemuck::Pod;
@@ -345,7 +345,7 @@ pub struct QLayer<'a> {
 }
 
 /// Per-row requantization: a Q31 multiplier and a shift per row (see
-/// [`Requant`]), stored as two arrays so the shifts take one byte each.
+/// [`Requant`](crate::fixed_point::Requant)), stored as two arrays so the shifts take one byte each.
 #[derive(Clone, Copy, Debug)]
 pub struct RowScales<'a> {
     mult: &'a [i32],
@@ -386,11 +386,16 @@ impl<'a> RowScales<'a> {
 
     /// Requantizes row `row`'s accumulator after a rounding right shift by
     /// `pre` (see [`pre_shift_for`]); `pre == 0` is the plain `i32` path.
-    #[inline]
+    ///
+    /// The same integers as [`Requant::apply`](crate::fixed_point::Requant::apply): the constructor keeps every
+    /// multiplier in `[0, 2^31)` and every shift in `[-31, 62]`, and
+    /// [`QLayer::new`] / [`QHead::new`] check that `shift - pre >= -31`
+    /// (see [`requant_nonneg`] for the proof of each shortcut).
+    #[inline(always)]
     fn apply(&self, row: usize, acc: i64, pre: u8) -> i32 {
-        let acc32 = if pre == 0 { acc as i32 } else { round_shr64(acc, pre as u32) as i32 };
+        let acc32 = if pre == 0 { acc as i32 } else { round_shr64_lo(acc, pre as u32) };
         match (self.mult.get(row), self.shift.get(row)) {
-            (Some(m), Some(s)) => Requant { mult: *m, shift: *s as i32 - pre as i32 }.apply(acc32),
+            (Some(m), Some(s)) => requant_nonneg(acc32, *m, *s as i32 - pre as i32),
             _ => 0,
         }
     }
@@ -501,7 +506,12 @@ fn check_bound(what: &'static str, layer: usize, w: Weights<'_>, cols: usize) ->
                 .map(|r| r.iter().map(|v| (*v as i64).abs()).sum::<i64>() * ACT_MAX)
                 .max()
                 .unwrap_or(0);
-            Ok(pre_shift_for(worst))
+            // The step's 32-bit rounding shift takes pre-shifts up to 31
+            // (2^61 of worst case: never for a row that fits in memory).
+            match pre_shift_for(worst) {
+                p @ 0..=31 => Ok(p),
+                _ => Err(Error::AccumulatorBound { what, layer, row: 0 }),
+            }
         }
     }
 }
@@ -517,12 +527,25 @@ pub fn pre_shift_for(worst: i64) -> u8 {
 }
 
 /// Rounding right shift of an `i64`, half away from zero (as
-/// [`round_shr`]); `n` in `1..=62`.
-#[inline]
+/// [`round_shr`](crate::fixed_point::round_shr)); `n` in `1..=62`. The reference for [`round_shr64_lo`].
+#[cfg(test)]
 fn round_shr64(x: i64, n: u32) -> i64 {
     // Branch-free, the same integers: floor((x + half - [x < 0]) / 2^n)
     // rounds ties away from zero (|x| < 2^62, so the sum cannot overflow).
     (x + (1i64 << (n - 1)) - (x < 0) as i64) >> n
+}
+
+/// `round_shr64(x, n) as i32` for `n` in `1..=31` (the int16 pre-shift,
+/// which [`QLayer::new`] and [`QHead::new`] keep in that range), from
+/// 32-bit halves: the low word of the 64-bit rounding shift is the low
+/// word shifted right with the high word's bottom `n` bits above it.
+#[inline(always)]
+fn round_shr64_lo(x: i64, n: u32) -> i32 {
+    let n = n & 31;
+    // 2^(n-1) - [x < 0] fits i32 (n <= 31), and |x| < 2^62.
+    let half = (1u32 << ((n.wrapping_sub(1)) & 31)) as i32 + (x >> 63) as i32;
+    let w = x + half as i64;
+    ((w as u32 >> n) | (((w >> 32) as u32) << ((32 - n) & 31))) as i32
 }
 
 /// A quantized dense head `y = requant(W h) + b` (borrowed).
@@ -863,24 +886,22 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
         let r = [j, hd + j, 2 * hd + j, 3 * hd + j];
         let ax = W::dot4([g0.0, g1.0, g2.0, g3.0], x);
         let ah = W::dot4([g0.1, g1.1, g2.1, g3.1], h);
-        let pre_of = |g: usize| -> i32 {
-            let (r, ax, ah) = match g {
-                0 => (r[0], ax[0], ah[0]),
-                1 => (r[1], ax[1], ah[1]),
-                2 => (r[2], ax[2], ah[2]),
-                _ => (r[3], ax[3], ah[3]),
-            };
-            let b = layer.bias.get(r).copied().unwrap_or(0);
-            layer.rq_x.apply(r, ax, pre_x).saturating_add(layer.rq_h.apply(r, ah, pre_h)).saturating_add(b)
-        };
-        let pre = [pre_of(0), pre_of(1), pre_of(2), pre_of(3)];
+        let pre = [
+            pre_act(layer, r[0], ax[0], ah[0], pre_x, pre_h),
+            pre_act(layer, r[1], ax[1], ah[1], pre_x, pre_h),
+            pre_act(layer, r[2], ax[2], ah[2], pre_x, pre_h),
+            pre_act(layer, r[3], ax[3], ah[3], pre_x, pre_h),
+        ];
         let gi = sigmoid(ctx.table, pre[0]);
         let gf = sigmoid(ctx.table, pre[1]);
         let gg = tanh(ctx.table, pre[2]);
         let go = sigmoid(ctx.table, pre[3]);
         let c_old = read_cell(c, j, ctx.cell);
-        let fc = mul_q31(gf, c_old);
-        let ig = round_shr(mul_q31(gi, gg), 31 - frac);
+        // Sigmoid outputs are in [1, 2^31) (activation::sigmoid), so the
+        // gate factors take the non-negative multiply; its results are in
+        // the range round_shr_inner needs.
+        let fc = mul_q31_nonneg(gf, c_old);
+        let ig = round_shr_inner(mul_q31_nonneg(gi, gg), 31 - frac);
         let mut c_new = fc.saturating_add(ig);
         if ctx.cell == CellWidth::C16 {
             c_new = sat_i16(c_new) as i32;
@@ -888,7 +909,7 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
         let t = tanh(ctx.table, shift_signed(c_new, PRE_FRAC as i32 - frac as i32));
         // |o * tanh| < 1, but rounding can reach -1.0: clamp symmetrically
         // so h stays in (-1, 1) like the float value.
-        let h_new = round_shr(mul_q31(go, t), 31 - A::FRAC).clamp(-A::MAX, A::MAX);
+        let h_new = round_shr_inner(mul_q31_nonneg(go, t), 31 - A::FRAC).clamp(-A::MAX, A::MAX);
         probe.gates(ctx.k, j, &pre, &[gi, gf, gg, go]);
         probe.state(ctx.k, j, c_new, h_new);
         write_cell(c, j, ctx.cell, c_new);
@@ -897,6 +918,13 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     for (hv, s) in h.iter_mut().zip(scratch.iter()) {
         *hv = *s;
     }
+}
+
+/// Gate row `r`'s pre-activation: both requantized dot products plus the bias.
+#[inline(always)]
+fn pre_act(layer: &QLayer<'_>, r: usize, ax: i64, ah: i64, pre_x: u8, pre_h: u8) -> i32 {
+    let b = layer.bias.get(r).copied().unwrap_or(0);
+    layer.rq_x.apply(r, ax, pre_x).saturating_add(layer.rq_h.apply(r, ah, pre_h)).saturating_add(b)
 }
 
 /// Gate `g`'s `hd` rows of `n` weights each, one by one (none when the
@@ -928,6 +956,7 @@ impl<'a, W> Iterator for Rows<'a, W> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::fixed_point::Requant;
 
     static STATIC_STATE: StateBuf<64> = StateBuf::new();
 
@@ -1026,5 +1055,34 @@ mod tests {
             QLayer::new(1, 1, Weights::I8(&wx), Weights::I8(&wh), &b, short, short, 13),
             Err(Error::Shape { .. })
         ));
+    }
+}
+
+#[cfg(test)]
+mod shift_tests {
+    use super::{round_shr64, round_shr64_lo};
+    use proptest::prelude::*;
+
+    #[test]
+    fn round_shr64_lo_edges() {
+        let xs = [0i64, 1, -1, 2, -2, 3, -3, (1 << 61) - 1, -(1 << 61), 1 << 40, -(1 << 40) - 1];
+        for x in xs {
+            for n in 1..=31 {
+                assert_eq!(round_shr64_lo(x, n), round_shr64(x, n) as i32, "x {x} n {n}");
+            }
+        }
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(4096))]
+        #[test]
+        fn round_shr64_lo_matches(x in -(1i64 << 62) + 1..(1i64 << 62), n in 1u32..=31) {
+            prop_assert_eq!(round_shr64_lo(x, n), round_shr64(x, n) as i32);
+        }
+
+        #[test]
+        fn round_shr64_lo_matches_small(x in -(1i64 << 34)..(1i64 << 34), n in 1u32..=31) {
+            prop_assert_eq!(round_shr64_lo(x, n), round_shr64(x, n) as i32);
+        }
     }
 }

@@ -220,6 +220,14 @@ for t in "${TARGETS[@]}"; do
     echo "$t: ${RUSTC_OF[$t]}"
 done
 
+# The M33 build targets the Cortex-M33 core, whose DSP extension gives the
+# dual 16-bit multiply-accumulates (smlad/smlald) the int16 dot products
+# use; the plain thumbv8m.main target assumes a core without it. This is
+# cargo's per-target setting as an environment variable: a
+# `[target.thumbv8m.main-none-eabihf]` table is not found by cargo's config
+# lookup (the dot in the triple), so .cargo/config.toml cannot hold it.
+M33_RUSTFLAGS="-C target-cpu=cortex-m33"
+
 # Runs cargo for the firmware crate (from its directory, so its
 # .cargo/config.toml applies), with the toolchain that serves target $1.
 fw_cargo() {
@@ -227,9 +235,11 @@ fw_cargo() {
     shift
     if [ "${MODE[$t]}" = rustup ]; then
         (cd "$FW" && env -u RUSTFLAGS -u CARGO_ENCODED_RUSTFLAGS -u CARGO_BUILD_TARGET \
+            CARGO_TARGET_THUMBV8M_MAIN_NONE_EABIHF_RUSTFLAGS="$M33_RUSTFLAGS" \
             CARGO_TARGET_DIR="$FW_TARGET" "$HOST_CARGO" "$@" --locked --target "$t")
     else
         (cd "$FW" && env -u RUSTFLAGS -u CARGO_ENCODED_RUSTFLAGS -u CARGO_BUILD_TARGET -u RUSTUP_TOOLCHAIN \
+            CARGO_TARGET_THUMBV8M_MAIN_NONE_EABIHF_RUSTFLAGS="$M33_RUSTFLAGS" \
             RUSTC_BOOTSTRAP=1 RUSTC=/usr/bin/rustc PATH="/usr/bin:$PATH" CARGO_TARGET_DIR="$FW_TARGET" \
             /usr/bin/cargo "$@" --locked -Zbuild-std=core --target "$t")
     fi
