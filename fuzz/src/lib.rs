@@ -150,6 +150,33 @@ pub fn quantize_chain(model: &FloatModelData, rng: &mut Rng, max_weights: usize)
     }
 }
 
+/// Any bytes written to `name` -> `import` with each of `layouts` (`None`:
+/// detected); a model that imports goes on through [`quantize_chain`]; an
+/// error must be one line starting with the file name.
+pub fn import_chain(name: &str, data: &[u8], layouts: &[Option<lapwing_tools::import::Layout>]) {
+    use lapwing_tools::import::{import, ImportOptions};
+    let path = scratch_file(name, data);
+    let mut rng = Rng::from_bytes(data);
+    for layout in layouts {
+        let opts = ImportOptions { layout: *layout, ..ImportOptions::default() };
+        match import(&path, &opts) {
+            Ok(imp) => {
+                let _ = imp.summary();
+                let mut model = imp.model.clone();
+                if let Some(n) = &imp.norm {
+                    let _ = model.fold_normalization(&n.mean, &n.std);
+                }
+                quantize_chain(&model, &mut rng, 1 << 14);
+            }
+            Err(e) => {
+                let msg = format!("{e:#}");
+                assert!(msg.starts_with(&path.display().to_string()), "{msg}");
+                assert!(!msg.contains('\n'), "{msg}");
+            }
+        }
+    }
+}
+
 /// Reads `path` as data; on success checks what [`lapwing_tools::data::read`]
 /// promises (rows of `columns.len()` finite values, at least one row and one
 /// column, a 0/1 label per row or none); on failure checks the message
