@@ -102,6 +102,13 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
         }
     };
     let scen = Scenario::load(&opts.demo_data.join("scenario.toml"))?;
+    // The shipped model is read before any data set is generated, so a
+    // missing or broken one fails at once.
+    let shipped = if opts.refit {
+        None
+    } else {
+        Some(import(&opts.demo_data.join("model.safetensors"), &ImportOptions::default())?)
+    };
     std::fs::create_dir_all(&opts.out).with_context(|| format!("cannot create {}", opts.out.display()))?;
     let mut files = Vec::new();
     let write_set = |set: DataSet| -> Result<(PathBuf, usize)> {
@@ -115,7 +122,9 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
     let (test, test_rows) = write_set(DataSet::Test)?;
     files.extend([calib.clone(), test.clone()]);
 
-    let model_path = if opts.refit {
+    let imported = if let Some(imported) = shipped {
+        imported
+    } else {
         say("fitting a new float model on the training set (--refit)");
         let (train, _) = write_set(DataSet::Train)?;
         files.push(train.clone());
@@ -124,13 +133,10 @@ pub fn run(opts: &DemoOptions) -> Result<DemoSummary> {
         let p = opts.out.join("model.safetensors");
         export::save_safetensors(&r.model, Some(&r.norm), &p)?;
         files.push(p.clone());
-        p
-    } else {
-        opts.demo_data.join("model.safetensors")
+        import(&p, &ImportOptions::default())?
     };
 
     say(&format!("quantizing (w8a16, c16, {} rounding) with the anomaly detector", opts.rounding.name()));
-    let imported = import(&model_path, &ImportOptions::default())?;
     let mut model = imported.model.clone();
     if let Some(n) = &imported.norm {
         model.fold_normalization(&n.mean, &n.std)?;

@@ -439,6 +439,12 @@ fn bad_budget_and_scenario_files() {
     std::fs::write(demo_data.join("scenario.toml"), "name = 3\n").unwrap();
     let demo_out = fx.path("demo-out");
     refuses(&["demo", "--demo-data", &s(&demo_data), "--out", &s(&demo_out)], &demo_out, &["scenario.toml"]);
+    // A valid scenario without the shipped model: refused before any data
+    // set is generated (the output directory is never created).
+    let no_model = fx.path("demo-data-no-model");
+    std::fs::create_dir(&no_model).unwrap();
+    std::fs::copy(root().join("demo-data/scenario.toml"), no_model.join("scenario.toml")).unwrap();
+    refuses(&["demo", "--demo-data", &s(&no_model), "--out", &s(&demo_out)], &demo_out, &["model.safetensors"]);
 }
 
 #[test]
