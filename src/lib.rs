@@ -53,6 +53,8 @@ extern crate std;
 
 pub mod activation;
 pub mod detect;
+#[cfg(lapwing_dsp)]
+mod dsp;
 pub mod fixed_point;
 pub mod float;
 pub mod model;

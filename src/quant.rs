@@ -204,8 +204,17 @@ impl Weights<'_> {
     }
 }
 
+/// What the DSP kernels need of an activation element (`src/dsp.rs`);
+/// nothing on other targets.
+#[cfg(lapwing_dsp)]
+use crate::dsp::Lanes as Simd;
+#[cfg(not(lapwing_dsp))]
+trait Simd {}
+#[cfg(not(lapwing_dsp))]
+impl<T> Simd for T {}
+
 /// An integer element of weights or activations.
-trait Elem: Copy + Pod + Default {
+trait Elem: Copy + Pod + Default + Simd {
     fn widen(self) -> i32;
 }
 
@@ -252,22 +261,30 @@ impl Weight for i8 {
         w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(a.widen() * b.widen())) as i64
     }
     /// Two rows per pass (two `i32` accumulators): four would leave
-    /// too few registers on Cortex-M and spill.
+    /// too few registers on Cortex-M and spill. Cores with the DSP
+    /// extension take `sxtb16`/`smlad` kernels instead (`src/dsp.rs`,
+    /// the same integers).
     #[inline]
     fn dot4<A: Elem>(w: [&[i8]; 4], v: &[A]) -> [i64; 4] {
-        let [w0, w1, w2, w3] = w;
-        let dot2 = |w0: &[i8], w1: &[i8]| {
-            let (mut a0, mut a1) = (0i32, 0i32);
-            for ((p, q), x) in w0.iter().zip(w1).zip(v) {
-                let x = x.widen();
-                a0 = a0.wrapping_add(p.widen() * x);
-                a1 = a1.wrapping_add(q.widen() * x);
-            }
-            (a0 as i64, a1 as i64)
-        };
-        let (a0, a1) = dot2(w0, w1);
-        let (a2, a3) = dot2(w2, w3);
-        [a0, a1, a2, a3]
+        #[cfg(lapwing_dsp)]
+        if let Some(s) = crate::dsp::dot4_i8(w, v) {
+            return s.map(i64::from);
+        }
+        {
+            let [w0, w1, w2, w3] = w;
+            let dot2 = |w0: &[i8], w1: &[i8]| {
+                let (mut a0, mut a1) = (0i32, 0i32);
+                for ((p, q), x) in w0.iter().zip(w1).zip(v) {
+                    let x = x.widen();
+                    a0 = a0.wrapping_add(p.widen() * x);
+                    a1 = a1.wrapping_add(q.widen() * x);
+                }
+                (a0 as i64, a1 as i64)
+            };
+            let (a0, a1) = dot2(w0, w1);
+            let (a2, a3) = dot2(w2, w3);
+            [a0, a1, a2, a3]
+        }
     }
     fn slice(w: Weights<'_>) -> &[i8] {
         match w {
