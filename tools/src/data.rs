@@ -252,6 +252,9 @@ pub fn write_csv_streaming(
     Ok(written)
 }
 
+/// Read buffer of the CSV reader, in bytes (the reader's default is 8 KiB).
+const READ_BUFFER_BYTES: usize = 1 << 16;
+
 /// Most feature columns a data file may have.
 const MAX_COLUMNS: usize = 1 << 16;
 
@@ -344,9 +347,12 @@ fn csv_rows(
     let (file, file_len) = open(path)?;
     let mut rdr = csv::ReaderBuilder::new()
         .has_headers(true)
-        .trim(csv::Trim::All)
+        // The header is trimmed by the reader; data cells are trimmed below
+        // in place (the reader's field trimming builds a new record per row).
+        .trim(csv::Trim::Headers)
         // Ragged rows are checked below, with a message naming the column.
         .flexible(true)
+        .buffer_capacity(READ_BUFFER_BYTES)
         .from_reader(file);
     let header = rdr.headers().map_err(|e| csv_error(path, None, e))?.clone();
     let header_line = header.position().map_or(1, csv::Position::line);
@@ -381,13 +387,29 @@ fn csv_rows(
     }
 
     let mut progress = Progress::new(path, progress, file_len);
-    let mut record = csv::StringRecord::new();
+    // One record and one row reused for every row: no allocation per row.
+    // Cells are checked as UTF-8 (the whole record first, as the reader's
+    // `StringRecord` does) and trimmed of Unicode whitespace (as its
+    // `Trim::All` does).
+    let mut record = csv::ByteRecord::new();
     let mut row: Vec<f32> = Vec::with_capacity(columns.len());
     let mut index = 0usize;
     loop {
-        let more = rdr.read_record(&mut record).map_err(|e| csv_error(path, Some(&header), e))?;
+        // A UTF-8 error names the line where the reader stood before the
+        // record, as the CSV reader's own error does.
+        let before = rdr.position().line();
+        let more = rdr.read_byte_record(&mut record).map_err(|e| csv_error(path, Some(&header), e))?;
         if !more {
             break;
+        }
+        let not_utf8 = |i: usize| {
+            let title = header.get(i).map_or_else(String::new, |h| format!(" ({})", show(h)));
+            anyhow!("{name}: line {before}, column {}{title}: not valid UTF-8 text (save the file as UTF-8)", i + 1)
+        };
+        if !record.as_slice().is_ascii() {
+            if let Some(i) = record.iter().position(|field| std::str::from_utf8(field).is_err()) {
+                return Err(not_utf8(i));
+            }
         }
         let (line, byte) = record.position().map_or((0, 0), |p| (p.line(), p.byte()));
         if record.len() != header.len() {
@@ -407,14 +429,15 @@ fn csv_rows(
                 "{name}: line {line}, column {} (beyond the header): extra field {} (the row has {fields} but \
                  the header has {cols})",
                 extra + 1,
-                show(record.get(extra).unwrap_or(""))
+                show(record.get(extra).and_then(|f| std::str::from_utf8(f).ok()).map_or("", str::trim))
             );
         }
 
         row.clear();
         let mut label = None;
-        for (i, (cell, h)) in record.iter().zip(header.iter()).enumerate() {
+        for (i, (field, h)) in record.iter().zip(header.iter()).enumerate() {
             let at = || format!("{name}: line {line}, column {} ({})", i + 1, show(h));
+            let cell = std::str::from_utf8(field).map_err(|_| not_utf8(i))?.trim();
             if Some(i) == label_col {
                 label = Some(parse_label(cell).map_err(|why| anyhow!("{}: {why}", at()))?);
             } else {
