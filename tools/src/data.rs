@@ -191,11 +191,12 @@ pub fn write_csv(path: &Path, header: &[String], rows: impl IntoIterator<Item = 
 
 /// Receives rows for [`write_csv_streaming`].
 pub struct CsvSink<'a> {
-    w: csv::Writer<&'a std::fs::File>,
+    w: io::BufWriter<&'a File>,
     name: String,
     cols: usize,
     rows: usize,
-    text: String,
+    /// The row being written, reused for every row.
+    line: Vec<u8>,
 }
 
 impl CsvSink<'_> {
@@ -204,6 +205,7 @@ impl CsvSink<'_> {
     /// # Errors
     /// A row whose length differs from the header's, or an I/O error.
     pub fn push(&mut self, row: &[f32]) -> Result<()> {
+        use std::io::Write as _;
         let name = &self.name;
         if row.len() != self.cols {
             bail!(
@@ -213,12 +215,19 @@ impl CsvSink<'_> {
                 count(self.cols, "column", "columns")
             );
         }
-        for v in row {
-            self.text.clear();
-            let _ = write!(self.text, "{v}");
-            self.w.write_field(&self.text).with_context(|| format!("cannot write {name}"))?;
+        // The text of `{}` for `f32` is digits, `.`, `-`, `NaN` or `inf`:
+        // nothing a CSV writer quotes, so the row is written as is, with the
+        // CSV writer's `,` delimiter and `\n` terminator.
+        self.line.clear();
+        for (i, v) in row.iter().enumerate() {
+            if i > 0 {
+                self.line.push(b',');
+            }
+            // Writing into a `Vec<u8>` cannot fail.
+            let _ = write!(self.line, "{v}");
         }
-        self.w.write_record(None::<&[u8]>).with_context(|| format!("cannot write {name}"))?;
+        self.line.push(b'\n');
+        self.w.write_all(&self.line).with_context(|| format!("cannot write {name}"))?;
         self.rows += 1;
         Ok(())
     }
@@ -235,15 +244,20 @@ pub fn write_csv_streaming(
     header: &[String],
     produce: impl FnOnce(&mut CsvSink<'_>) -> Result<()>,
 ) -> Result<usize> {
+    use std::io::Write as _;
     let name = path.display().to_string();
     if header.is_empty() {
         bail!("cannot write {name}: no columns to write");
     }
+    // The header goes through the CSV writer, which quotes names that need it.
+    let mut head = csv::Writer::from_writer(Vec::new());
+    head.write_record(header).with_context(|| format!("cannot write {name}"))?;
+    let head = head.into_inner().map_err(|e| anyhow!("cannot write {name}: {}", e.error()))?;
     let mut written = 0;
     crate::output::write_atomic_with(path, |file| {
-        let mut w = csv::Writer::from_writer(file);
-        w.write_record(header).with_context(|| format!("cannot write {name}"))?;
-        let mut sink = CsvSink { w, name: name.clone(), cols: header.len(), rows: 0, text: String::new() };
+        let mut w = io::BufWriter::with_capacity(WRITE_BUFFER_BYTES, file);
+        w.write_all(&head).with_context(|| format!("cannot write {name}"))?;
+        let mut sink = CsvSink { w, name: name.clone(), cols: header.len(), rows: 0, line: Vec::new() };
         produce(&mut sink)?;
         sink.w.flush().with_context(|| format!("cannot write {name}"))?;
         written = sink.rows;
@@ -251,6 +265,9 @@ pub fn write_csv_streaming(
     })?;
     Ok(written)
 }
+
+/// Write buffer of CSV outputs, in bytes.
+const WRITE_BUFFER_BYTES: usize = 1 << 18;
 
 /// Read buffer of the CSV reader, in bytes (the reader's default is 8 KiB).
 const READ_BUFFER_BYTES: usize = 1 << 16;
@@ -1077,6 +1094,31 @@ mod tests {
         assert!(d.expect_features(3).is_ok());
         let msg = d.expect_features(4).unwrap_err().to_string();
         assert_eq!(msg, "data.csv has 3 feature columns (a, b, c) but the model takes 4 inputs");
+    }
+
+    /// The sink writes what the CSV writer with `{}` formatting wrote before
+    /// (header quoting, delimiters, terminators), byte for byte.
+    #[test]
+    fn write_csv_matches_the_csv_writer() {
+        let header = vec!["a, with comma".to_string(), "q\"uote".to_string(), "y0".to_string()];
+        let mut rows = vec![vec![0.1f32, -1e-7, 1.0], vec![f32::MAX, f32::MIN_POSITIVE, -0.0], vec![1e21, 42.0, -3.5]];
+        rows.extend((0..1000).map(|i| vec![i as f32 * 1.3e-3, -(i as f32) / 7.0, (i as f32).sin() * 1e6]));
+        let mut old = csv::Writer::from_writer(Vec::new());
+        old.write_record(&header).unwrap();
+        for r in &rows {
+            for v in r {
+                old.write_field(format!("{v}")).unwrap();
+            }
+            old.write_record(None::<&[u8]>).unwrap();
+        }
+        let old = old.into_inner().unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("out.csv");
+        write_csv(&path, &header, &rows).unwrap();
+        assert_eq!(fs::read(&path).unwrap(), old);
+        let one = dir.path().join("one.csv");
+        write_csv(&one, &["x".to_string()], [[0.5f32], [-2.0]]).unwrap();
+        assert_eq!(fs::read_to_string(&one).unwrap(), "x\n0.5\n-2\n");
     }
 
     #[test]
