@@ -10,7 +10,7 @@ use crate::calibrate::{Calibrator, RangeMethod, Ranges};
 use crate::data;
 use crate::float_model::FloatModelData;
 use crate::import::{import, ImportOptions, Imported, Normalization};
-use crate::quantize::input_to_int;
+use crate::quantize::input_to_int_into;
 use anyhow::{bail, Context, Result};
 use std::path::Path;
 
@@ -157,16 +157,15 @@ pub enum RunValues {
 
 /// Device integers given as numbers: each must be a whole number in the
 /// `int16` range.
-fn raw_ints(x: &[f32]) -> Result<Vec<i16>> {
-    x.iter()
-        .enumerate()
-        .map(|(i, v)| {
-            if v.fract() != 0.0 || *v < i16::MIN as f32 || *v > i16::MAX as f32 {
-                bail!("column {}: {v} is not an int16 device value (raw input)", i + 1);
-            }
-            Ok(*v as i16)
-        })
-        .collect()
+fn raw_ints(x: &[f32], out: &mut Vec<i16>) -> Result<()> {
+    out.clear();
+    for (i, v) in x.iter().enumerate() {
+        if v.fract() != 0.0 || *v < i16::MIN as f32 || *v > i16::MAX as f32 {
+            bail!("column {}: {v} is not an int16 device value (raw input)", i + 1);
+        }
+        out.push(*v as i16);
+    }
+    Ok(())
 }
 
 /// Output column names: `y0..` for a head, `h0..` for the last hidden state.
@@ -219,14 +218,15 @@ pub fn run_file(
             let mut state = vec![0i16; m.state_words()];
             let mut out = vec![0i16; m.output_len()];
             let mut row = vec![0.0f32; m.output_len()];
+            let mut xi: Vec<i16> = Vec::with_capacity(m.input_len());
             let header = output_columns(blob.header().has_head, m.output_len());
             data::write_csv_streaming(out_path, &header, |sink| {
                 data::for_each_row(data_path, progress, |_, x, _| {
                     check(x.len(), m.input_len())?;
-                    let xi = match values {
-                        RunValues::RawIo => raw_ints(x)?,
-                        _ => input_to_int(x, blob.input_scale()),
-                    };
+                    match values {
+                        RunValues::RawIo => raw_ints(x, &mut xi)?,
+                        _ => input_to_int_into(x, blob.input_scale(), &mut xi),
+                    }
                     m.step(&mut state, &xi, &mut out).map_err(|e| anyhow::anyhow!("{e}"))?;
                     for ((r, v), s) in row.iter_mut().zip(&out).zip(blob.output_scale()) {
                         *r = match values {

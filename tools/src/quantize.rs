@@ -233,10 +233,20 @@ impl QuantModelData {
 /// zero, in f64), saturated to `int16`. The one conversion every host path
 /// uses, so `run` on a blob and the report agree bit for bit.
 pub fn input_to_int(x: &[f32], scale: &[f32]) -> Vec<i16> {
-    x.iter()
-        .zip(scale)
-        .map(|(v, s)| (*v as f64 / *s as f64).round().clamp(i16::MIN as f64, i16::MAX as f64) as i16)
-        .collect()
+    let mut out = Vec::with_capacity(x.len().min(scale.len()));
+    input_to_int_into(x, scale, &mut out);
+    out
+}
+
+/// As [`input_to_int`], into `out` (cleared first), so a loop over rows
+/// reuses one buffer.
+pub fn input_to_int_into(x: &[f32], scale: &[f32], out: &mut Vec<i16>) {
+    out.clear();
+    out.extend(
+        x.iter()
+            .zip(scale)
+            .map(|(v, s)| (*v as f64 / *s as f64).round().clamp(i16::MIN as f64, i16::MAX as f64) as i16),
+    );
 }
 
 /// Quantizes one matrix per row after multiplying column `c` by `col_scale[c]`,
