@@ -243,6 +243,10 @@ impl Elem for i16 {
 /// extension. Every sum is exact, so the result does not depend on the
 /// order of the additions and is the same integer on every target.
 trait Weight: Elem {
+    /// Whether rows may need a pre-shift into `i32` (int16 weights; int8
+    /// rows are refused unless their sums fit `i32`, so their pre-shift is
+    /// always 0).
+    const WIDE: bool;
     /// Exact `sum w[i] * v[i]`.
     fn dot<A: Elem>(w: &[Self], v: &[A]) -> i64;
     /// Exact `sum w[g][i] * v[i]` for four rows `g` at once (each row as
@@ -254,6 +258,7 @@ trait Weight: Elem {
 }
 
 impl Weight for i8 {
+    const WIDE: bool = false;
     /// Accumulates in `i32`: the constructors prove `sum |w| * 32768` fits,
     /// so no row can overflow; `wrapping_add` only avoids a debug panic path.
     #[inline]
@@ -295,6 +300,7 @@ impl Weight for i8 {
 }
 
 impl Weight for i16 {
+    const WIDE: bool = true;
     /// Accumulates in `i64`: each product is below `2^30` and rows are at
     /// most `2^16` long, so the sum stays below `2^46`.
     #[inline]
@@ -779,7 +785,8 @@ impl<'a> QModel<'a> {
                 let rows =
                     head.bias.iter().enumerate().map(|(r, b)| (r, (w.get(r * n..(r + 1) * n).unwrap_or(&[]), b)));
                 for (o, (r, (row, b))) in out.iter_mut().zip(rows) {
-                    *o = sat_i16(head.rq.apply(r, W::dot(row, last), head.pre).saturating_add(*b));
+                    let pre = if W::WIDE { head.pre } else { 0 };
+                    *o = sat_i16(head.rq.apply(r, W::dot(row, last), pre).saturating_add(*b));
                 }
             }
             None => {
@@ -894,7 +901,9 @@ fn layer_step<W: Weight, A: Hidden, X: Elem, P: Probe<i32>>(
     let (hd, xi) = (layer.hidden, layer.input);
     let frac = layer.cell_frac as u32;
     let (w_x, w_h) = (W::slice(layer.w_x), W::slice(layer.w_h));
-    let (pre_x, pre_h) = (layer.pre_x, layer.pre_h);
+    // Int8 rows always have pre-shift 0 (`check_bound`): a constant, so
+    // their requantization compiles without the 64-bit pre-shift path.
+    let (pre_x, pre_h) = if W::WIDE { (layer.pre_x, layer.pre_h) } else { (0, 0) };
     // Gate g's weight rows (rows g*H .. (g+1)*H), unit by unit, walked by
     // zipped iterators: no index arithmetic or bounds check per row.
     let gate = |g: usize| gate_rows(w_x, hd, xi, g).zip(gate_rows(w_h, hd, hd, g));
