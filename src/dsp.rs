@@ -177,7 +177,8 @@ impl Lanes for i8 {
     /// Int8 activations widen with `sxtb16` too: per four columns one
     /// activation word gives the pairs `(v0, v2)` and `(v1, v3)` that line
     /// up with the weights' `sxtb16` pairs (one-instruction `asm!`
-    /// helpers, LLVM's loop; 9.65 -> 8.97 instructions per MAC on the M4).
+    /// helpers, LLVM's loop; 9.65 -> 8.97 instructions per MAC on the M4 when
+    /// it was added).
     fn dot4_chunks(w: [&[i8]; 4], v: &[i8]) -> [i32; 4] {
         let mut acc = [0i32; 4];
         for (k, a) in v.chunks_exact(4).enumerate() {
