@@ -215,19 +215,19 @@ impl<T> Simd for T {}
 
 /// An integer element of weights or activations.
 trait Elem: Copy + Pod + Default + Simd {
-    fn widen(self) -> i32;
+    fn to_i32(self) -> i32;
 }
 
 impl Elem for i8 {
     #[inline(always)]
-    fn widen(self) -> i32 {
+    fn to_i32(self) -> i32 {
         self as i32
     }
 }
 
 impl Elem for i16 {
     #[inline(always)]
-    fn widen(self) -> i32 {
+    fn to_i32(self) -> i32 {
         self as i32
     }
 }
@@ -263,7 +263,7 @@ impl Weight for i8 {
     /// so no row can overflow; `wrapping_add` only avoids a debug panic path.
     #[inline]
     fn dot<A: Elem>(w: &[i8], v: &[A]) -> i64 {
-        w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(a.widen() * b.widen())) as i64
+        w.iter().zip(v).fold(0i32, |acc, (a, b)| acc.wrapping_add(a.to_i32() * b.to_i32())) as i64
     }
     /// Two rows per pass (two `i32` accumulators): four would leave
     /// too few registers on Cortex-M and spill. Cores with the DSP
@@ -280,9 +280,9 @@ impl Weight for i8 {
             let dot2 = |w0: &[i8], w1: &[i8]| {
                 let (mut a0, mut a1) = (0i32, 0i32);
                 for ((p, q), x) in w0.iter().zip(w1).zip(v) {
-                    let x = x.widen();
-                    a0 = a0.wrapping_add(p.widen() * x);
-                    a1 = a1.wrapping_add(q.widen() * x);
+                    let x = x.to_i32();
+                    a0 = a0.wrapping_add(p.to_i32() * x);
+                    a1 = a1.wrapping_add(q.to_i32() * x);
                 }
                 (a0 as i64, a1 as i64)
             };
@@ -305,7 +305,7 @@ impl Weight for i16 {
     /// most `2^16` long, so the sum stays below `2^46`.
     #[inline]
     fn dot<A: Elem>(w: &[i16], v: &[A]) -> i64 {
-        w.iter().zip(v).fold(0i64, |acc, (a, b)| acc.wrapping_add((a.widen() * b.widen()) as i64))
+        w.iter().zip(v).fold(0i64, |acc, (a, b)| acc.wrapping_add((a.to_i32() * b.to_i32()) as i64))
     }
     /// One row per pass: the plain fold, which LLVM turns into dual 16-bit
     /// multiplies with 64-bit accumulate (`smlald`) on DSP cores. Sharing
@@ -791,7 +791,7 @@ impl<'a> QModel<'a> {
             }
             None => {
                 for (o, v) in out.iter_mut().zip(last) {
-                    *o = v.widen() as i16;
+                    *o = v.to_i32() as i16;
                 }
             }
         }
