@@ -73,19 +73,13 @@ fn word(c: &[i8; 4]) -> u32 {
 }
 
 /// An activation element the kernels take: `i16` (w8a16) or `i8` (w8a8).
-pub(crate) trait Lanes: Copy {
-    /// The value, widened.
-    fn wide(self) -> i32;
+pub(crate) trait DspAct: Copy + Into<i32> {
     /// The exact sums over the first `4 * (v.len() / 4)` columns of four
     /// rows at least as long as `v`.
     fn dot4_chunks(w: [&[i8]; 4], v: &[Self]) -> [i32; 4];
 }
 
-impl Lanes for i16 {
-    #[inline(always)]
-    fn wide(self) -> i32 {
-        self as i32
-    }
+impl DspAct for i16 {
     /// The whole loop in one `asm!` block: LLVM's own loops over these
     /// operations spill and recompute addresses (3-4 instructions per
     /// multiply-accumulate, measured), this one takes 26 instructions per
@@ -169,11 +163,7 @@ impl Lanes for i16 {
     }
 }
 
-impl Lanes for i8 {
-    #[inline(always)]
-    fn wide(self) -> i32 {
-        self as i32
-    }
+impl DspAct for i8 {
     /// Int8 activations widen with `sxtb16` too: per four columns one
     /// activation word gives the pairs `(v0, v2)` and `(v1, v3)` that line
     /// up with the weights' `sxtb16` pairs (one-instruction `asm!`
@@ -199,7 +189,7 @@ impl Lanes for i8 {
 /// when a row's length differs (the caller then takes the portable path,
 /// which defines that case).
 #[inline(never)]
-pub(crate) fn dot4_i8<A: Lanes>(w: [&[i8]; 4], v: &[A]) -> Option<[i32; 4]> {
+pub(crate) fn dot4_i8<A: DspAct>(w: [&[i8]; 4], v: &[A]) -> Option<[i32; 4]> {
     let n = v.len();
     if w.iter().any(|r| r.len() != n) {
         return None;
@@ -210,7 +200,7 @@ pub(crate) fn dot4_i8<A: Lanes>(w: [&[i8]; 4], v: &[A]) -> Option<[i32; 4]> {
     let vt = v.get(tail..).unwrap_or(&[]);
     for (s, row) in acc.iter_mut().zip(w) {
         let wt = row.get(tail..).unwrap_or(&[]);
-        *s = wt.iter().zip(vt).fold(*s, |s, (p, q)| s.wrapping_add(*p as i32 * q.wide()));
+        *s = wt.iter().zip(vt).fold(*s, |s, (p, q)| s.wrapping_add(*p as i32 * (*q).into()));
     }
     Some(acc)
 }

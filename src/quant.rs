@@ -207,7 +207,7 @@ impl Weights<'_> {
 /// What the DSP kernels need of an activation element (`src/dsp.rs`);
 /// nothing on other targets.
 #[cfg(lapwing_dsp)]
-use crate::dsp::Lanes as Simd;
+use crate::dsp::DspAct as Simd;
 #[cfg(not(lapwing_dsp))]
 trait Simd {}
 #[cfg(not(lapwing_dsp))]
